@@ -1,0 +1,1 @@
+from corrpipe.version import __version__

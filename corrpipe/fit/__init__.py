@@ -1,0 +1,1 @@
+"""BAO template fitting: likelihood, sampling and summaries."""

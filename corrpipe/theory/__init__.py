@@ -1,0 +1,1 @@
+"""Linear theory and BAO templates."""
