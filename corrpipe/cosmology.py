@@ -27,6 +27,7 @@ from corrpipe.theory import eh98
 
 __all__ = [
     "Cosmology",
+    "CosmologySettings",
     "PRESETS",
     "preset",
     "sky_to_cartesian",
@@ -348,6 +349,44 @@ def preset(name: str) -> Cosmology:
     except KeyError as exc:
         msg = f"cosmology: unknown preset {name!r}; known presets are {sorted(PRESETS)}"
         raise ConfigError(msg) from exc
+
+
+@dataclass(frozen=True)
+class CosmologySettings:
+    """The ``[cosmology]`` config table: a preset plus optional overrides of its parameters.
+
+    Every parameter left empty takes the preset's value; see :class:`Cosmology` for meanings.
+    Call :meth:`build` for the :class:`Cosmology` object.
+    """
+
+    preset: str = setting("planck2018", "named fiducial cosmology the other keys override",
+                          choices=tuple(PRESETS))
+    h: float | None = setting(None, "dimensionless Hubble constant", low=0.2, high=1.5)
+    omega_m: float | None = setting(None, "matter density parameter Omega_m today",
+                                    low=0.0, high=1.5, low_open=True)
+    omega_b: float | None = setting(None, "baryon density parameter Omega_b today",
+                                    low=0.0, high=0.5, low_open=True)
+    n_s: float | None = setting(None, "scalar spectral index", low=0.5, high=1.5)
+    sigma8: float | None = setting(None, "rms linear fluctuation in 8 Mpc/h spheres at z=0",
+                                   low=0.0, high=2.0, low_open=True)
+    T_cmb: float | None = setting(None, "CMB temperature today", unit="K", low=0.0, high=10.0)
+    N_eff: float | None = setting(None, "effective number of massless neutrino species",
+                                  low=0.0, high=10.0)
+    omega_k: float | None = setting(None, "curvature density parameter", low=-0.5, high=0.5)
+    w0: float | None = setting(None, "dark-energy equation of state today", low=-3.0, high=0.0)
+    wa: float | None = setting(None, "dark-energy equation of state slope", low=-3.0, high=3.0)
+    r_d: float | None = setting(None, "sound horizon at the drag epoch (empty: EH98 computed)",
+                                unit="Mpc", low=50.0, high=300.0)
+
+    def validate(self) -> None:
+        """Check the combination (e.g. omega_b < omega_m) by building the cosmology."""
+        self.build()
+
+    def build(self) -> Cosmology:
+        """Return the :class:`Cosmology` these settings describe."""
+        overrides = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
+                     if f.name != "preset" and getattr(self, f.name) is not None}
+        return dataclasses.replace(preset(self.preset), **overrides)
 
 
 # ---------------------------------------------------------------------- sky <-> cartesian

@@ -243,3 +243,19 @@ def test_sound_horizon_without_radiation_needs_user_value():
     # common practice: no photons means no acoustic horizon to integrate
     with pytest.raises(ConfigError, match="give r_d"):
         Cosmology(T_cmb=0.0).sound_horizon()
+
+
+def test_cosmology_settings_table():
+    # Planck 2018 VI Table 2 [from memory] preset values; overrides replace single fields
+    from corrpipe.cosmology import CosmologySettings
+    from corrpipe.config import validate_section
+    from pathlib import Path
+
+    s = validate_section(CosmologySettings, {"preset": "planck2018-cmb", "r_d": 147.09},
+                         "cosmology", "test.toml", Path("."))
+    c = s.build()
+    assert c.h == 0.6736 and c.sound_horizon() == 147.09
+    with pytest.raises(ConfigError, match="smaller than omega_m"):
+        validate_section(CosmologySettings, {"omega_b": 0.4}, "cosmology", "t.toml", Path("."))
+    with pytest.raises(ConfigError, match="preset"):
+        validate_section(CosmologySettings, {"preset": "nope"}, "cosmology", "t.toml", Path("."))
