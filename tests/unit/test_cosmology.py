@@ -143,14 +143,15 @@ def test_sky_to_cartesian_axes():
     np.testing.assert_allclose(xyz, [[chi, 0, 0], [0, chi, 0], [0, 0, chi]], atol=1e-9 * chi)
 
 
-def test_growth_matches_heath_integral_without_radiation():
-    # Heath 1977 (MNRAS 179, 351) [from memory]: for matter + Lambda,
+@pytest.mark.parametrize("ok", [0.0, 0.1, -0.1])
+def test_growth_matches_heath_integral_without_radiation(ok):
+    # Heath 1977 (MNRAS 179, 351) [from memory]: for matter + curvature + Lambda,
     # D(a) proportional to E(a) int_0^a da' / (a' E(a'))^3; check with scipy.integrate.quad
     om, h = 0.3, 0.7
-    c = Cosmology(h=h, omega_m=om, omega_b=0.045, T_cmb=0.0)
+    c = Cosmology(h=h, omega_m=om, omega_b=0.045, T_cmb=0.0, omega_k=ok)
 
     def e(a):
-        return np.sqrt(om / a**3 + 1 - om)
+        return np.sqrt(om / a**3 + ok / a**2 + 1 - om - ok)
 
     def heath(a):
         return e(a) * quad(lambda x: 1.0 / (x * e(x)) ** 3, 0.0, a, epsrel=1e-12)[0]
@@ -259,3 +260,13 @@ def test_cosmology_settings_table():
         validate_section(CosmologySettings, {"omega_b": 0.4}, "cosmology", "t.toml", Path("."))
     with pytest.raises(ConfigError, match="preset"):
         validate_section(CosmologySettings, {"preset": "nope"}, "cosmology", "t.toml", Path("."))
+
+
+def test_growth_rate_w0wa_close_to_linder_gamma():
+    # Linder 2005 (PRD 72, 043529) [from memory]: gamma = 0.55 + 0.05 [1 + w(z=1)] for
+    # w(z=1) >= -1, accurate to a few 0.1 % in f; we allow 0.5 %
+    c = Cosmology(w0=-0.9, wa=0.1, T_cmb=0.0)
+    model = c.astropy()
+    gamma = 0.55 + 0.05 * (1.0 + model.w(1.0))
+    for z in (0.0, 0.5, 1.0, 2.0):
+        assert c.growth_rate(z) == pytest.approx(model.Om(z) ** gamma, rel=5e-3)
