@@ -230,6 +230,9 @@ class CatalogueSettings:
                                           "outside [0, box_size) are wrapped; further is an error",
                                     low=0.0, high=0.5)
     name: str = setting("data", "label of the catalogue in logs and outputs")
+    box_redshift: float = setting(0.5, "redshift of a periodic box (sets the template's growth "
+                                  "and the fiducial distances the dilations refer to)",
+                                  low=0.0, high=20.0)
 
     def validate(self) -> None:
         """Cross-field checks: a box needs its size; the redshift range must be non-empty."""

@@ -69,6 +69,9 @@ class Stage:
         fingerprint.
     enabled : callable
         ``enabled(analysis) -> bool``; a disabled stage is skipped and not fingerprinted.
+    extra : callable
+        ``extra(analysis) -> dict`` of single settings from other tables that the stage also
+        depends on (enter the fingerprint without making the whole table a dependency).
     """
 
     name: str
@@ -77,6 +80,7 @@ class Stage:
     compute: Callable[["StageContext"], Callable[[h5py.File], None]]
     inputs: Callable[[AnalysisConfig], Sequence[str | Path]] = lambda a: ()
     enabled: Callable[[AnalysisConfig], bool] = lambda a: True
+    extra: Callable[[AnalysisConfig], dict] = lambda a: {}
 
 
 @dataclass
@@ -166,6 +170,7 @@ def _fingerprint_parts(stage: Stage, analysis: AnalysisConfig, upstream: dict[st
         "sections": {s: analysis.section_dict(s) for s in stage.sections},
         "upstream": {u: upstream[u] for u in stage.upstream if u in upstream},
         "inputs": inputs,
+        "extra": stage.extra(analysis),
     }
 
 
@@ -205,6 +210,9 @@ def _stale_reason(path: Path, parts: dict[str, Any]) -> str:
     for p, d in parts["inputs"].items():
         if stored.get("inputs", {}).get(p) != d:
             changes.append(f"input file {p} changed")
+    for key, value in parts.get("extra", {}).items():
+        if stored.get("extra", {}).get(key) != value:
+            changes.append(f"{key} changed")
     if stored.get("schema") != parts["schema"]:
         changes.append("file schema changed")
     return "; ".join(changes) or "written with other settings"
