@@ -99,7 +99,16 @@ class StageContext:
     @property
     def progress_path(self) -> Path:
         """Sidecar for partial progress of this stage (deleted when the stage completes)."""
-        return self.folder / f".{self.stage.name}.{self.fingerprint[:16]}.progress.h5"
+        return self.sidecar()
+
+    def sidecar(self, label: str = "") -> Path:
+        """A named partial-progress file of this stage (several if the stage has parts).
+
+        Sidecars belong to the stage's fingerprint: a rerun with other settings discards
+        them, and all are deleted once the stage file is written.
+        """
+        tag = f".{label}" if label else ""
+        return self.folder / f".{self.stage.name}.{self.fingerprint[:16]}{tag}.progress.h5"
 
     def path(self, stage: str) -> Path:
         """File of another stage of this analysis."""
@@ -386,8 +395,9 @@ def _run_stage(stage: Stage, config: RunConfig, analysis: AnalysisConfig, folder
                fp: str, fps: dict[str, str], parts: dict[str, Any], show: bool) -> None:
     ctx = StageContext(stage=stage, config=config, analysis=analysis, folder=folder,
                        fingerprint=fp, fingerprints=dict(fps), show_progress=show)
+    mine = f".{stage.name}.{fp[:16]}"
     for old in folder.glob(f".{stage.name}.*.progress.h5"):
-        if old != ctx.progress_path:
+        if not old.name.startswith(mine):
             old.unlink()
     for tmp in folder.glob(f".{stage.name}.h5.tmp-*"):  # left by a killed run; we hold the lock
         tmp.unlink()
@@ -408,8 +418,8 @@ def _run_stage(stage: Stage, config: RunConfig, analysis: AnalysisConfig, folder
         "corrpipe_version": __version__,
     }
     write_checkpoint(folder / f"{stage.name}.h5", stage.name, fp, fill, provenance)
-    if ctx.progress_path.exists():
-        ctx.progress_path.unlink()
+    for done in folder.glob(f"{mine}*.progress.h5"):
+        done.unlink()
     log.info("[%s] %s: done in %.1f s", analysis.name, stage.name, time.perf_counter() - t0)
 
 

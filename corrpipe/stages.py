@@ -304,10 +304,130 @@ def _coverage_area(ra, dec, nside: int) -> float:
     return footprint_from_data(ra, dec, nside=nside).area_sr()
 
 
+def _binnings(a) -> dict:
+    """The binnings the ``[counts]`` table asks for: {"smu": Binning, ["rppi": Binning]}."""
+    from corrpipe.paircount import Binning
+
+    c = a.counts
+    mu_lo = 0.0 if c.mu_range == "absolute" else -1.0
+    out = {"smu": Binning.from_edges(c.s_edges(), np.linspace(mu_lo, 1.0, c.n_mu + 1),
+                                     mu_range=c.mu_range)}
+    if c.projected:
+        out["rppi"] = Binning.from_edges(np.geomspace(c.rp_min, c.rp_max, c.n_rp + 1),
+                                         pi_edges=np.linspace(0.0, c.pi_max, c.n_pi + 1))
+    return out
+
+
+def _los(a, box_axis) -> str:
+    return "xyz"[box_axis] if box_axis is not None else a.counts.line_of_sight
+
+
+class _Counter:
+    """Runs the pair counts of the counts stage on the configured engine, one sidecar each."""
+
+    def __init__(self, ctx: StageContext, box_size, los: str, n_regions: int):
+        self.ctx, self.box_size, self.los, self.n_regions = ctx, box_size, los, n_regions
+        self.threads = ctx.config.run.threads or None
+
+    def __call__(self, label: str, binning, pos1, w1, reg1, pos2=None, w2=None, reg2=None):
+        from corrpipe.paircount import count_pairs
+
+        log.info("[%s] counts: %s (%d x %s objects)", self.ctx.analysis.name, label, len(w1),
+                 "self" if pos2 is None else len(w2))
+        regions = self.n_regions > 0
+        return count_pairs(pos1, w1, pos2, w2, binning=binning, los=self.los,
+                           box_size=self.box_size, regions1=reg1 if regions else None,
+                           regions2=reg2 if regions and pos2 is not None else None,
+                           n_regions=self.n_regions if regions else None,
+                           raw=self.ctx.analysis.counts.raw_counts, n_threads=self.threads,
+                           progress=self.ctx.show_progress,
+                           progress_path=self.ctx.sidecar(label))
+
+
+def _sum_split(parts: list):
+    """Split-random RR: sum the per-set counts and their normalisations (Keihänen et al. 2019)."""
+    from dataclasses import replace
+
+    first = parts[0]
+    total = lambda name: None if getattr(first, name) is None else sum(  # noqa: E731
+        getattr(p, name) for p in parts)
+    region_norm = None
+    if first.n_regions:
+        region_norm = np.array([sum(p.jackknife_norm(k) for p in parts)
+                                for k in range(first.n_regions)])
+    return replace(first, weighted=total("weighted"), raw=total("raw"),
+                   region_both=total("region_both"), region_one=total("region_one"),
+                   sum_w1=total("sum_w1"), sum_w1_sq=total("sum_w1_sq"),
+                   sum_w2=total("sum_w2"), sum_w2_sq=total("sum_w2_sq"),
+                   n1=total("n1"), n2=total("n2"),
+                   region_sum_w1=total("region_sum_w1"),
+                   region_sum_w1_sq=total("region_sum_w1_sq"),
+                   region_sum_w2=total("region_sum_w2"),
+                   region_sum_w2_sq=total("region_sum_w2_sq"),
+                   pair_norm=float(sum(p.norm for p in parts)),
+                   region_pair_norm=region_norm,
+                   meta={**first.meta, "rr_splits": len(parts)})
+
+
+def _counts(ctx: StageContext):
+    """DD, DR and RR (split over random sets; analytic for a box) in (s, mu) [and (r_p, pi)]."""
+    a = ctx.analysis
+    with ctx.read("load") as h5:
+        data = read_catalogue(h5["data"])
+    with ctx.read("randoms") as h5:
+        dw = h5["data/weights"][()]
+        d_reg = h5["data/regions"][()] if "data/regions" in h5 else None
+        has_randoms = "randoms" in h5
+        if has_randoms:
+            rpos = h5["randoms/positions"][()]
+            rw = h5["randoms/weights"][()]
+            r_reg = h5["randoms/regions"][()] if "randoms/regions" in h5 else None
+            subset = h5["randoms/subset"][()]
+        n_regions = int(h5.attrs["n_regions"])
+    counter = _Counter(ctx, data.box_size, _los(a, data.los_axis), n_regions)
+    results: dict[str, dict[str, Any]] = {}
+    for mode, binning in _binnings(a).items():
+        res = {"DD": counter(f"{mode}-DD", binning, data.positions, dw, d_reg)}
+        if has_randoms:
+            res["DR"] = counter(f"{mode}-DR", binning, data.positions, dw, d_reg, rpos, rw, r_reg)
+            n_sets = int(subset.max()) + 1
+            parts = []
+            for k in range(n_sets):
+                sel = subset == k
+                parts.append(counter(f"{mode}-RR{k}", binning, rpos[sel], rw[sel],
+                                     None if r_reg is None else r_reg[sel]))
+            res["RR"] = parts[0] if n_sets == 1 else _sum_split(parts)
+        else:
+            from corrpipe.paircount import analytic_box_rr
+
+            res["RR"] = analytic_box_rr(binning, float(data.box_size), float(dw.sum()),
+                                        float(np.sum(dw**2)), int(dw.size))
+        results[mode] = res
+
+    def fill(h5: h5py.File) -> None:
+        for mode, res in results.items():
+            g = h5.create_group(mode)
+            for name, pc in res.items():
+                pc.to_hdf5(g.create_group(name))
+        h5.attrs["line_of_sight"] = counter.los
+        h5.attrs["n_regions"] = n_regions
+
+    return fill
+
+
+def read_counts(h5: h5py.File, mode: str = "smu") -> dict:
+    """Read the {name: PairCounts} of one binning from an open ``counts.h5``."""
+    from corrpipe.paircount import PairCounts
+
+    return {name: PairCounts.from_hdf5(g) for name, g in h5[mode].items()}
+
+
 STAGES: tuple[Stage, ...] = (
     Stage("load", ("catalogue", "cosmology"), (), _load,
           inputs=lambda a: [a.catalogue.path]),
     Stage("randoms", ("footprint", "randoms", "weights", "regions"), ("load",), _randoms,
           inputs=lambda a: [a.randoms.file] if a.randoms.file else [],
           extra=lambda a: {"counts.box_rr": a.counts.box_rr}),
+    Stage("counts", ("counts",), ("load", "randoms"), _counts,
+          extra=lambda a: {}),
 )
