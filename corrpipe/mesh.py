@@ -43,6 +43,7 @@ __all__ = [
     "gradient",
     "displacement",
     "displacement_fourier",
+    "shot_noise_window",
     "PowerMultipoles",
     "power_multipoles",
     "correlation_multipoles",
@@ -429,6 +430,54 @@ class PowerMultipoles:
     n_modes: np.ndarray
 
 
+def shot_noise_window(n_mesh: int, box_size: float, scheme: str = "cic") -> np.ndarray:
+    """Aliased shot-noise window sum_n W^2(k + 2 k_N n) of a mass-assignment scheme.
+
+    Returns
+    -------
+    ndarray of float64, shape (n, n, n // 2 + 1)
+        prod_i C(s_i), s_i = sin(k_i H / 2), with C = 1 (NGP), 1 - 2 s^2 / 3 (CIC),
+        1 - s^2 + 2 s^4 / 15 (TSC).
+
+    Notes
+    -----
+    Jing 2005, ApJ 620, 559, eq. 20 [from memory]; the closed forms follow from summing the
+    aliases of sinc^(2p) (common practice).
+    """
+    p = _order(scheme)
+    h = cell_size(box_size, n_mesh)
+    out = np.ones((n_mesh, n_mesh, n_mesh // 2 + 1))
+    for k in wavenumbers(n_mesh, box_size):
+        s2 = np.sin(0.5 * k * h) ** 2
+        if p == 2:
+            out = out * (1.0 - 2.0 / 3.0 * s2)
+        elif p == 3:
+            out = out * (1.0 - s2 + 2.0 / 15.0 * s2**2)
+    return out
+
+
+def _mesh_power(delta, box_size, scheme, shot_noise, other, workers):
+    """|F|^2 V / n^6 (or the cross term), shot noise removed, window deconvolved."""
+    n = delta.shape[0]
+    f1 = to_fourier(delta, workers)
+    if other is None:
+        p3 = f1.real.astype(np.float64) ** 2 + f1.imag.astype(np.float64) ** 2
+    else:
+        f2 = to_fourier(other, workers)
+        p3 = (f1 * np.conj(f2)).real.astype(np.float64)
+        del f2
+    del f1
+    p3 *= box_size**3 / float(n) ** 6
+    if other is None and shot_noise:
+        if scheme is None:
+            p3 -= shot_noise
+        else:
+            p3 -= shot_noise * shot_noise_window(n, box_size, scheme)
+    if scheme is not None:
+        p3 /= assignment_window(n, box_size, scheme) ** 2
+    return p3
+
+
 def _mode_multiplicity(n: int) -> np.ndarray:
     m = np.full(n // 2 + 1, 2.0)
     m[0] = 1.0
@@ -465,7 +514,10 @@ def power_multipoles(
     scheme : {"ngp", "cic", "tsc"} or None
         Assignment window to deconvolve (None: none).
     shot_noise : float
-        Constant subtracted from the monopole, (Mpc/h)^3 (1/nbar for a Poisson sample).
+        Poisson shot noise of the painted points, (Mpc/h)^3 (1/nbar for unit weights;
+        sum w^2 V / (sum w)^2 in general). Subtracted with its aliased window (see
+        :func:`shot_noise_window`) before the assignment window is deconvolved; ignored for
+        cross-spectra.
     other : ndarray, shape (n, n, n), optional
         Second field for a cross-spectrum Re[F1 F2*].
 
@@ -480,22 +532,9 @@ def power_multipoles(
     counted twice so the average runs over the full sphere.
     """
     n = _check_field(delta, "delta")
-    f1 = to_fourier(delta, workers)
-    if scheme is not None:
-        compensate(f1, box_size, scheme)
-    if other is None:
-        p3 = (f1.real**2 + f1.imag**2)
-    else:
-        if other.shape != delta.shape:
-            raise InputError(f"cross-spectrum fields differ in shape: {delta.shape} vs "
-                             f"{other.shape}")
-        f2 = to_fourier(other, workers)
-        if scheme is not None:
-            compensate(f2, box_size, scheme)
-        p3 = (f1 * np.conj(f2)).real
-        del f2
-    del f1
-    p3 = p3 * (box_size**3 / float(n) ** 6)
+    if other is not None and other.shape != delta.shape:
+        raise InputError(f"cross-spectrum fields differ in shape: {delta.shape} vs {other.shape}")
+    p3 = _mesh_power(delta, box_size, scheme, shot_noise, other, workers)
     kx, ky, kz = wavenumbers(n, box_size)
     kmag = np.sqrt(kx**2 + ky**2 + kz**2)
     k_los = (kx, ky, kz)[los_axis]
@@ -518,8 +557,6 @@ def power_multipoles(
             leg = np.polynomial.legendre.Legendre.basis(int(ell))(mu_f)
             s = np.bincount(idx, weights=w * p_f * leg, minlength=n_bins)
             out[i] = (2 * ell + 1) * s / counts
-            if ell == 0:
-                out[i] -= shot_noise
         kmean = ksum / counts
     return PowerMultipoles(k=kmean, ells=tuple(int(e) for e in ells), power=out,
                            n_modes=counts)
@@ -531,6 +568,8 @@ def correlation_multipoles(
     s_edges: np.ndarray,
     ells: tuple = (0, 2, 4),
     los_axis: int = 2,
+    scheme: str | None = None,
+    shot_noise: float = 0.0,
     workers: int | None = None,
 ):
     """Correlation-function multipoles of a density-contrast mesh, by FFT.
@@ -547,6 +586,12 @@ def correlation_multipoles(
         Multipoles.
     los_axis : int
         Fixed line-of-sight axis.
+    scheme : {"ngp", "cic", "tsc"} or None
+        Assignment window to deconvolve before forming C(r) (None: none).
+    shot_noise : float
+        Poisson shot noise to subtract, (Mpc/h)^3, as in :func:`power_multipoles`. Without
+        it the shot noise sits at lags below ~2 cells (CIC) but spreads further once the
+        window is deconvolved, so give both or neither.
 
     Returns
     -------
@@ -559,12 +604,14 @@ def correlation_multipoles(
     -----
     The mesh autocorrelation C(r) = <delta(x) delta(x + r)> is the inverse transform of
     |delta_k|^2 (Wiener-Khinchin theorem); xi_ell = (2 ell + 1) <C L_ell(mu)> over the lags of
-    each shell. The painting window smooths C on the scale of a cell, so use it well above
-    a few cells. Poisson shot noise sits at zero lag (and, for CIC/TSC, the adjacent lags).
+    each shell. Without ``scheme`` the painting window smooths C on the scale of a cell, so
+    use it well above a few cells. Poisson shot noise sits at zero lag (and, for CIC/TSC, the adjacent lags).
     """
     n = _check_field(delta, "delta")
-    fk = to_fourier(delta, workers)
-    c = to_real(fk.real**2 + fk.imag**2, n, workers) / float(n) ** 3
+    p3 = _mesh_power(delta, box_size, scheme, shot_noise, None, workers)
+    # C(r) = (1/V) sum_k P(k) exp(i k r)  =  irfftn(P) n^3 / V
+    c = to_real(p3.astype(np.complex128), n, workers) * (float(n) ** 3 / box_size**3)
+    del p3
     h = box_size / n
     lag = np.fft.fftfreq(n, d=1.0 / n) * h
     rx, ry, rz = lag[:, None, None], lag[None, :, None], lag[None, None, :]
