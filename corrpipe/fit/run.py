@@ -1,0 +1,316 @@
+"""Fit entry point: template, likelihood, best fit, chain, chi^2 profile, summary."""
+
+from __future__ import annotations
+
+import hashlib
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+from scipy.optimize import minimize
+
+from corrpipe.errors import InputError
+from corrpipe.fit.likelihood import Likelihood
+from corrpipe.fit.result import FitResult, dilations_from_samples, summarise_samples
+from corrpipe.fit.sampler import run_chain
+from corrpipe.fit.settings import FitSettings
+from corrpipe.theory.linear_power import LinearPower
+from corrpipe.theory.template import BAOTemplate
+
+__all__ = ["fit_multipoles", "build_linear_power", "build_likelihood", "best_fit",
+           "alpha_profile"]
+
+_PENALTY = 1e30
+
+
+def build_linear_power(cosmology: Any, z: float, settings: FitSettings) -> LinearPower:
+    """Linear power at redshift ``z`` as the settings ask (EH98 or a tabulated file)."""
+    if settings.power_spectrum == "file":
+        return LinearPower.from_file(settings.power_file, cosmology, z=z,
+                                     width_ln_k=settings.nowiggle_width)
+    return LinearPower.eisenstein_hu(cosmology, z, "wiggle", normalisation=settings.normalisation,
+                                     A_s=settings.A_s)
+
+
+def build_likelihood(s, data_vector, covariance, ells: Sequence[int], *, cosmology: Any,
+                     z_eff: float, settings: FitSettings = FitSettings(),
+                     precision_factor: float = 1.0,
+                     linear_power: LinearPower | None = None) -> Likelihood:
+    """Template at the fiducial cosmology and the likelihood of the given data."""
+    settings.validate()
+    lp = linear_power if linear_power is not None else build_linear_power(cosmology, z_eff,
+                                                                          settings)
+    template = BAOTemplate.from_settings(lp, settings)
+    return Likelihood(s, data_vector, covariance, ells, template, settings,
+                      precision_factor=precision_factor)
+
+
+def _objective(like: Likelihood):
+    def f(theta):
+        v = like.log_posterior(theta)
+        return -2.0 * v if np.isfinite(v) else _PENALTY
+    return f
+
+
+def _analytic_B(like: Likelihood, phys: dict) -> float:
+    p = dict(phys, B=1.0)
+    u = like.template_model(p)
+    q = like._Q
+    return float(u @ q @ like.data) / max(float(u @ q @ u), 1e-300)
+
+
+def best_fit(like: Likelihood, n_grid: int = 9) -> np.ndarray:
+    """Maximum-posterior point: a coarse scan of the dilations (B solved linearly), then
+    Nelder-Mead over all sampled parameters (scipy.optimize.minimize)."""
+    st = like.settings
+    start = like.start()
+    grid = np.linspace(st.alpha_min + 0.02, st.alpha_max - 0.02, n_grid)
+    i_b = like.names.index("B")
+    p_b = like.parameters[i_b]
+    f = _objective(like)
+    best, best_val = start.copy(), f(start)
+    if st.analysis == "isotropic":
+        candidates = [(a,) for a in grid]
+    elif st.parametrisation == "alpha-epsilon":
+        eps = np.linspace(-0.8 * st.epsilon_max, 0.8 * st.epsilon_max, 7)
+        candidates = [(a, e) for a in grid for e in eps]
+    else:
+        candidates = [(a, b) for a in grid for b in grid]
+    for cand in candidates:
+        theta = start.copy()
+        theta[:len(cand)] = cand
+        b = _analytic_B(like, like.physical(theta))
+        theta[i_b] = np.clip(b, p_b.low * 1.001, p_b.high * 0.999)
+        val = f(theta)
+        if val < best_val:
+            best, best_val = theta, val
+    res = minimize(f, best, method="Nelder-Mead",
+                   options={"xatol": 1e-6, "fatol": 1e-7, "maxiter": 8000, "maxfev": 16000})
+    res = minimize(f, res.x, method="Nelder-Mead",
+                   options={"xatol": 1e-7, "fatol": 1e-8, "maxiter": 8000, "maxfev": 16000})
+    return res.x if res.fun <= best_val else best
+
+
+def alpha_profile(like: Likelihood, best: np.ndarray, n_points: int) -> dict:
+    """chi^2 profile over alpha_iso, every other parameter re-minimised at each point.
+
+    The minimised quantity is -2 ln posterior (chi^2 plus the Gaussian prior terms). The
+    1-sigma interval is where the profile rises by 1 above its minimum (Wilks' theorem for
+    one parameter; common practice).
+    """
+    st = like.settings
+    names = like.names
+    anisotropic = st.analysis == "anisotropic"
+    phys_best = like.physical(best)
+    alpha_best = float(np.cbrt(phys_best["alpha_par"] * phys_best["alpha_perp"] ** 2))
+    eps_best = float(np.cbrt(phys_best["alpha_par"] / phys_best["alpha_perp"]) - 1.0)
+    rest_names = [n for n in names if n not in ("alpha", "epsilon", "alpha_par", "alpha_perp")]
+    rest_idx = [names.index(n) for n in rest_names]
+
+    def theta_of(alpha: float, x: np.ndarray) -> np.ndarray:
+        theta = best.copy()
+        if anisotropic:
+            eps = x[0]
+            if "alpha_par" in names:
+                theta[0], theta[1] = alpha * (1.0 + eps) ** 2, alpha / (1.0 + eps)
+            else:
+                theta[0], theta[1] = alpha, eps
+            theta[rest_idx] = x[1:]
+        else:
+            theta[0] = alpha
+            theta[rest_idx] = x
+        return theta
+
+    f = _objective(like)
+    grid = np.linspace(st.alpha_min, st.alpha_max, n_points)
+    values = np.empty(n_points)
+    x0_best = np.concatenate([[eps_best] if anisotropic else [], best[rest_idx]])
+    order = np.argsort(np.abs(grid - alpha_best))
+    x_prev = {}
+    for i in order:
+        # warm start from the nearest already-profiled point
+        done = [j for j in x_prev]
+        x0 = x_prev[min(done, key=lambda j: abs(j - i))] if done else x0_best
+        res = minimize(lambda x: f(theta_of(grid[i], x)), x0, method="Nelder-Mead",
+                       options={"xatol": 1e-6, "fatol": 1e-6, "maxiter": 4000})
+        values[i] = res.fun
+        x_prev[i] = res.x
+    chi2_min = min(float(values.min()), f(best))
+    delta = values - chi2_min
+    lo, hi = _crossings(grid, delta, alpha_best)
+    return {"alpha": grid, "delta_chi2": delta, "alpha_best": alpha_best,
+            "error_minus": None if lo is None else alpha_best - lo,
+            "error_plus": None if hi is None else hi - alpha_best,
+            "minimum_chi2": chi2_min}
+
+
+def _crossings(grid: np.ndarray, delta: np.ndarray, centre: float) -> tuple:
+    """Where delta chi^2 crosses 1 on each side of ``centre`` (linear interpolation)."""
+    lo = hi = None
+    for j in range(len(grid) - 1):
+        a, b = delta[j], delta[j + 1]
+        if (a - 1.0) * (b - 1.0) <= 0 and a != b:
+            x = grid[j] + (1.0 - a) * (grid[j + 1] - grid[j]) / (b - a)
+            if x < centre and (a > b):
+                lo = x
+            elif x > centre and (b > a) and hi is None:
+                hi = x
+    return lo, hi
+
+
+def _data_hash(*arrays) -> str:
+    h = hashlib.sha256()
+    for a in arrays:
+        h.update(np.ascontiguousarray(np.asarray(a, dtype=float)).tobytes())
+    return h.hexdigest()[:16]
+
+
+def _init_scale(like: Likelihood, best: np.ndarray) -> np.ndarray:
+    scale = []
+    for p, x in zip(like.parameters, best):
+        if p.name in ("alpha", "alpha_par", "alpha_perp", "epsilon"):
+            scale.append(3e-3)
+        elif p.name == "B":
+            scale.append(0.01 * abs(x))
+        else:
+            scale.append(0.02 * max(abs(x), 1.0))
+    return np.array(scale)
+
+
+def fit_multipoles(s, data_vector, covariance, ells: Sequence[int], *, cosmology: Any,
+                   z_eff: float, settings: FitSettings = FitSettings(),
+                   progress_path: str | Path | None = None, progress: bool = True,
+                   seed: int | None = None, covariance_type: str = "unknown",
+                   precision_factor: float = 1.0, variance_factor: float = 1.0,
+                   name: str = "main", linear_power: LinearPower | None = None) -> FitResult:
+    """Fit the BAO template to correlation-function multipoles and summarise the posterior.
+
+    Parameters
+    ----------
+    s : array_like, shape (n_s,)
+        Separation bin centres, Mpc/h.
+    data_vector : array_like, shape (len(ells) * n_s,)
+        Multipoles, one block per ell in the order of ``ells``.
+    covariance : array_like
+        Covariance of ``data_vector``.
+    ells : sequence of int
+        Multipoles present in ``data_vector``.
+    cosmology : corrpipe.cosmology.Cosmology
+        Fiducial cosmology (template and distances).
+    z_eff : float
+        Effective redshift of the data.
+    settings : FitSettings
+        Fit range, template, priors, sampler.
+    progress_path : str or Path, optional
+        emcee HDF5 progress file; an interrupted chain with the same settings and data
+        continues from its last step.
+    progress : bool
+        Show progress bars.
+    seed : int, optional
+        Sampler seed (default ``settings.seed``).
+    covariance_type : str
+        Where the covariance came from (``"jackknife"``, ``"mocks"``, ...), for the summary.
+    precision_factor : float
+        Factor applied to the inverse covariance (Hartlap et al. 2007).
+    variance_factor : float
+        Percival et al. (2014) m1; reported errors are multiplied by sqrt(m1).
+    name : str
+        Analysis name.
+    linear_power : LinearPower, optional
+        Use this spectrum instead of building one from the settings.
+
+    Returns
+    -------
+    FitResult
+    """
+    if not (variance_factor > 0):
+        raise InputError(f"fit: the variance factor m1 must be positive, got {variance_factor}")
+    seed = settings.seed if seed is None else int(seed)
+    like = build_likelihood(s, data_vector, covariance, ells, cosmology=cosmology, z_eff=z_eff,
+                            settings=settings, precision_factor=precision_factor,
+                            linear_power=linear_power)
+    ml = best_fit(like)
+    model_hash = "-".join([settings.model_hash(), _data_hash(s, data_vector, covariance, ells,
+                                                              [z_eff, precision_factor]),
+                           repr(cosmology), str(seed)])
+    model_hash = hashlib.sha256(model_hash.encode()).hexdigest()[:24]
+    chain = run_chain(like.log_posterior, ml, n_walkers=settings.n_walkers, seed=seed,
+                      progress_path=progress_path, model_hash=model_hash,
+                      max_steps=settings.max_steps, check_every=settings.check_every,
+                      tau_factor=settings.tau_factor, tau_tolerance=settings.tau_tolerance,
+                      init_scale=_init_scale(like, ml), progress=progress)
+    # Best fit: the better of the optimiser and the best chain sample.
+    flat_lp = chain.log_prob.reshape(-1)
+    j = int(np.argmax(flat_lp))
+    if flat_lp[j] > like.log_posterior(ml):
+        ml = chain.chain.reshape(-1, like.n_dim)[j].copy()
+    profile = alpha_profile(like, ml, settings.profile_points) if settings.profile_points \
+        else None
+    return summarise(like, chain, ml, profile, cosmology=cosmology, z_eff=z_eff,
+                     covariance_type=covariance_type, variance_factor=variance_factor,
+                     name=name)
+
+
+def summarise(like: Likelihood, chain, ml: np.ndarray, profile: dict | None, *,
+              cosmology: Any, z_eff: float, covariance_type: str, variance_factor: float,
+              name: str) -> FitResult:
+    """Posterior summaries, derived dilations and distances (errors scaled by sqrt(m1))."""
+    st = like.settings
+    samples = chain.samples()
+    scale = float(np.sqrt(variance_factor))
+    summary = {n: summarise_samples(samples[:, i], scale) for i, n in enumerate(like.names)}
+    dil = dilations_from_samples(like.names, samples)
+    for k, v in dil.items():
+        summary[k] = summarise_samples(v, scale)
+    # Samples widened about the median by sqrt(m1), for derived distances.
+    wide = {k: np.median(v) + scale * (v - np.median(v)) for k, v in dil.items()}
+    fid = cosmology.distance_ratios(z_eff)
+    fid = {k: float(np.asarray(v)) for k, v in fid.items()}
+    distances = {}
+    corr = None
+    if st.analysis == "isotropic":
+        distances["DV_over_rd"] = dict(summarise_samples(wide["alpha"] * fid["DV_over_rd"]),
+                                       fiducial=fid["DV_over_rd"])
+    else:
+        a_par, a_perp = wide["alpha_par"], wide["alpha_perp"]
+        distances["DM_over_rd"] = dict(summarise_samples(a_perp * fid["DM_over_rd"]),
+                                       fiducial=fid["DM_over_rd"])
+        distances["DH_over_rd"] = dict(summarise_samples(a_par * fid["DH_over_rd"]),
+                                       fiducial=fid["DH_over_rd"])
+        distances["DV_over_rd"] = dict(
+            summarise_samples(np.cbrt(a_par * a_perp**2) * fid["DV_over_rd"]),
+            fiducial=fid["DV_over_rd"])
+        corr = float(np.corrcoef(dil["alpha_par"], dil["alpha_perp"])[0, 1])
+    phys = like.physical(ml)
+    best = {n: float(x) for n, x in zip(like.names, ml)}
+    best.update({k: float(v) for k, v in phys.items()})
+    best["alpha"] = float(np.cbrt(phys["alpha_par"] * phys["alpha_perp"] ** 2))
+    best["epsilon"] = float(np.cbrt(phys["alpha_par"] / phys["alpha_perp"]) - 1.0)
+    chi2 = like.chi2(ml)
+    dof = like.n_data - like.n_broadband - like.n_dim
+    convergence = {"converged": chain.converged, "n_steps": chain.n_steps,
+                   "n_walkers": int(chain.chain.shape[1]), "tau": chain.tau.tolist(),
+                   "tau_factor": st.tau_factor, "burn": chain.burn, "thin": chain.thin,
+                   "n_samples": int(samples.shape[0]), "acceptance": chain.acceptance,
+                   "resumed_from": chain.resumed_from, "note": chain.note}
+    template = like.template
+    fiducial = dict(fid, r_d_template_Mpc=float(template.linear_power.sound_horizon),
+                    r_d_fiducial_Mpc=float(cosmology.sound_horizon()),
+                    B_prior_centre=float(like.B_centre), B_prior_used=like.B_prior_used)
+    if profile is not None and profile["error_minus"] is not None and \
+            profile["error_plus"] is not None:
+        profile["error_minus_scaled"] = scale * profile["error_minus"]
+        profile["error_plus_scaled"] = scale * profile["error_plus"]
+    t_model = like.template_model(phys)
+    data = {"s": like.s, "ells": np.array(like.ells), "data_vector": like.data,
+            "errors": like.errors, "model": like.full_model(ml), "model_template": t_model,
+            "broadband": like.broadband(ml)}
+    return FitResult(name=name, analysis=st.analysis, z_eff=float(z_eff), names=like.names,
+                     chain=chain.chain, log_prob=chain.log_prob, burn=chain.burn,
+                     thin=chain.thin, best_fit=best, chi2=float(chi2), dof=int(dof),
+                     summary=summary, distances=distances, fiducial=fiducial,
+                     convergence=convergence, covariance_type=covariance_type,
+                     variance_factor=float(variance_factor),
+                     precision_factor=float(like.precision_factor),
+                     correlation_par_perp=corr, profile=profile, settings=st.to_dict(),
+                     data=data)
