@@ -191,6 +191,15 @@ def _as_samples(vectors, what: str) -> np.ndarray:
     return x
 
 
+def _centred(vectors, what: str, unit: str) -> tuple[int, np.ndarray, np.ndarray]:
+    """(n_samples, mean, deviations from the mean) of a checked sample stack."""
+    x = _as_samples(vectors, what)
+    if x.shape[0] < 2:
+        raise InputError(f"a covariance needs at least 2 {unit}; got {x.shape[0]}")
+    mean = x.mean(axis=0)
+    return x.shape[0], mean, x - mean
+
+
 def jackknife_samples(dd: PairCounts, rr, dr=None, *, vector: Callable[[np.ndarray], np.ndarray]
                       = np.ravel, estimator: str = "landy_szalay", ds=None, ss=None,
                       weighting: str = "standard", cross_weight: float | None = None,
@@ -245,24 +254,14 @@ def jackknife_covariance(samples, cross_weight: float = 1.0) -> CovarianceResult
     -----
     Standard delete-one jackknife (Efron 1982; as written in Mohammad & Percival 2022).
     """
-    x = _as_samples(samples, "jackknife samples")
-    n = x.shape[0]
-    if n < 2:
-        raise InputError("a jackknife covariance needs at least 2 regions")
-    mean = x.mean(axis=0)
-    d = x - mean
+    n, mean, d = _centred(samples, "jackknife samples", "regions")
     cov = (n - 1.0) / n * (d.T @ d)
     return CovarianceResult(cov, "jackknife", n, mean, {"cross_weight": float(cross_weight)})
 
 
 def mock_covariance(vectors) -> CovarianceResult:
     """Sample covariance of estimator vectors measured on mocks (unbiased, 1/(n - 1))."""
-    x = _as_samples(vectors, "mock vectors")
-    n = x.shape[0]
-    if n < 2:
-        raise InputError("a mock covariance needs at least 2 mocks")
-    mean = x.mean(axis=0)
-    d = x - mean
+    n, mean, d = _centred(vectors, "mock vectors", "mocks")
     return CovarianceResult(d.T @ d / (n - 1.0), "mocks", n, mean)
 
 

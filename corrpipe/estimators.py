@@ -67,6 +67,21 @@ def region_norms(pc: PairCounts) -> tuple[np.ndarray, np.ndarray]:
     return w1 * w2, w1 * pc.sum_w2 + pc.sum_w1 * w2 - 2.0 * w1 * w2
 
 
+def _removed_norm(pc: PairCounts, k: int, cross_weight: float) -> float:
+    """Weighted pair total removed when region k is deleted (cross pairs times the weight)."""
+    if pc.region_pair_norm is not None:
+        # counts summed over split random sets carry their exact delete-one totals; the
+        # both/one proportions for a cross weight != 1 come from the summed weight sums,
+        # which scale like the per-set ones (exact for cross_weight = 1)
+        removed = pc.norm - float(pc.region_pair_norm[k])
+        if cross_weight != 1.0:
+            both, one = region_norms(pc)
+            removed *= (both[k] + cross_weight * one[k]) / (both[k] + one[k])
+        return removed
+    both, one = region_norms(pc)
+    return float(both[k] + cross_weight * one[k])
+
+
 def normalised_counts(counts: Counts, delete_region: int | None = None,
                       cross_weight: float = 1.0) -> np.ndarray:
     """Weighted counts divided by the weighted number of pairs.
@@ -92,9 +107,8 @@ def normalised_counts(counts: Counts, delete_region: int | None = None,
             k = int(delete_region)
             if not 0 <= k < pc.n_regions:
                 raise InputError(f"jackknife region {k} out of range [0, {pc.n_regions})")
-            both, one = region_norms(pc)
             w = w - pc.region_both[k] - cross_weight * pc.region_one[k]
-            n = n - both[k] - cross_weight * one[k]
+            n = n - _removed_norm(pc, k, cross_weight)
         total_w = total_w + w
         total_n += n
     if not total_n > 0:

@@ -1,5 +1,6 @@
 """Estimators, multipoles, wedges, w_p and rebinning against independent references."""
 
+import dataclasses
 import sys
 from pathlib import Path
 
@@ -135,6 +136,26 @@ def test_split_random_rr_counts_only_within_sets():
     split = normalised_counts(sets)
     ref = sum(s.weighted for s in sets) / sum(s.norm for s in sets)
     assert np.allclose(split, ref, rtol=1e-14)
+    # merged form used by the counts stage (pair_norm / region_pair_norm fields) agrees
+    labels = (rand[:, 0] > 30).astype(int) + 2 * (rand[:, 1] > 30)
+    sets_r = [brute_counts(rand[i::4], w[i::4], edges, regions1=labels[i::4], n_regions=4)
+              for i in range(4)]
+    merged = dataclasses.replace(
+        sets_r[0], weighted=sum(p.weighted for p in sets_r),
+        region_both=sum(p.region_both for p in sets_r),
+        region_one=sum(p.region_one for p in sets_r),
+        sum_w1=float(w.sum()), sum_w1_sq=float((w**2).sum()), sum_w2=float(w.sum()),
+        sum_w2_sq=float((w**2).sum()),
+        region_sum_w1=np.bincount(labels, w), region_sum_w1_sq=np.bincount(labels, w**2),
+        region_sum_w2=np.bincount(labels, w), region_sum_w2_sq=np.bincount(labels, w**2),
+        pair_norm=float(sum(p.norm for p in sets_r)),
+        region_pair_norm=np.array([sum(p.jackknife_norm(k) for p in sets_r)
+                                   for k in range(4)]))
+    for k in range(4):
+        assert np.allclose(normalised_counts(merged, k), normalised_counts(sets_r, k),
+                           rtol=1e-12)
+        assert np.allclose(normalised_counts(merged, k, 0.7), normalised_counts(sets_r, k, 0.7),
+                           rtol=2e-3)
     full = brute_counts(rand, w, edges).normalised()
     # same expectation: agree within the Poisson noise of the split pair counts
     n_split = sum(s.raw for s in sets)
