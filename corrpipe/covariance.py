@@ -28,6 +28,8 @@ __all__ = [
     "mohammad_percival_weight",
     "jackknife_samples",
     "jackknife_covariance",
+    "jackknife_from_counts",
+    "expand_mock_paths",
     "mock_covariance",
     "gaussian_box_covariance",
 ]
@@ -200,6 +202,59 @@ def _centred(vectors, what: str, unit: str) -> tuple[int, np.ndarray, np.ndarray
     return x.shape[0], mean, x - mean
 
 
+def _n_regions(dd: PairCounts) -> int:
+    if dd.n_regions < 2:
+        raise InputError("the DD counts carry no jackknife regions; count pairs with region "
+                         "labels (covariance.kind = 'jackknife')")
+    return dd.n_regions
+
+
+def _cross_weight(weighting: str, cross_weight: float | None, n_regions: int) -> float:
+    if cross_weight is not None and cross_weight > 0:
+        return float(cross_weight)
+    if weighting == "standard":
+        return 1.0
+    if weighting == "mohammad_percival":
+        return mohammad_percival_weight(n_regions)
+    raise ConfigError(f"covariance.jackknife_weighting = {weighting!r} is not 'standard' or "
+                      "'mohammad_percival'")
+
+
+def jackknife_from_counts(counts, estimate_settings, covariance_settings, rppi_counts=None,
+                          vector: str = "multipoles", progress: bool = True
+                          ) -> CovarianceResult:
+    """Jackknife covariance of an estimator vector straight from stored pair counts.
+
+    Parameters
+    ----------
+    counts, rppi_counts
+        As for :func:`corrpipe.estimators.estimate_from_counts`.
+    estimate_settings : EstimateSettings
+    covariance_settings : CovarianceSettings
+        ``jackknife_weighting``, ``cross_weight`` and ``max_condition`` are used.
+    vector : {"multipoles", "wedges", "wp"}
+
+    Raises
+    ------
+    StageError
+        Too few regions for the number of bins, or an ill-conditioned matrix.
+    """
+    from corrpipe.estimators import estimate_from_counts
+
+    dd = counts["DD"]
+    n_regions = _n_regions(dd if isinstance(dd, PairCounts) else dd[0])
+    cw = _cross_weight(covariance_settings.jackknife_weighting,
+                       covariance_settings.cross_weight, n_regions)
+    out = []
+    for k in tqdm(range(n_regions), desc="jackknife", disable=not progress):
+        est = estimate_from_counts(counts, estimate_settings, rppi_counts, delete_region=k,
+                                   cross_weight=cw)
+        out.append(est.vector(vector))
+    cov = jackknife_covariance(np.array(out), cw)
+    cov.check_invertible(covariance_settings.max_condition)
+    return cov
+
+
 def jackknife_samples(dd: PairCounts, rr, dr=None, *, vector: Callable[[np.ndarray], np.ndarray]
                       = np.ravel, estimator: str = "landy_szalay", ds=None, ss=None,
                       weighting: str = "standard", cross_weight: float | None = None,
@@ -227,18 +282,8 @@ def jackknife_samples(dd: PairCounts, rr, dr=None, *, vector: Callable[[np.ndarr
     cross_weight : float
         The cross-pair weight used.
     """
-    n_regions = dd.n_regions
-    if n_regions < 2:
-        raise InputError("the DD counts carry no jackknife regions; count pairs with region "
-                         "labels (covariance.kind = 'jackknife')")
-    if cross_weight is None:
-        if weighting == "standard":
-            cross_weight = 1.0
-        elif weighting == "mohammad_percival":
-            cross_weight = mohammad_percival_weight(n_regions)
-        else:
-            raise ConfigError(f"covariance.jackknife_weighting = {weighting!r} is not "
-                              "'standard' or 'mohammad_percival'")
+    n_regions = _n_regions(dd)
+    cross_weight = _cross_weight(weighting, cross_weight, n_regions)
     out = []
     for k in tqdm(range(n_regions), desc="jackknife", disable=not progress):
         xi = correlation(dd, rr, dr, ds=ds, ss=ss, estimator=estimator, delete_region=k,
@@ -263,6 +308,30 @@ def mock_covariance(vectors) -> CovarianceResult:
     """Sample covariance of estimator vectors measured on mocks (unbiased, 1/(n - 1))."""
     n, mean, d = _centred(vectors, "mock vectors", "mocks")
     return CovarianceResult(d.T @ d / (n - 1.0), "mocks", n, mean)
+
+
+def expand_mock_paths(patterns: Sequence[str], key: str = "covariance.mocks") -> list[str]:
+    """Sorted file list from paths and glob patterns; every pattern must match something.
+
+    Raises
+    ------
+    ConfigError
+        No pattern given, or a pattern that matches no file (named in the message).
+    """
+    import glob
+    import os
+
+    if not patterns:
+        raise ConfigError(f"{key} is empty; list mock catalogue files or glob patterns such as "
+                          "'mocks/mock_*.fits'")
+    files: list[str] = []
+    for pattern in patterns:
+        hits = sorted(glob.glob(os.fspath(pattern)))
+        if not hits:
+            raise ConfigError(f"{key}: '{pattern}' matches no file; check the path (relative "
+                              "paths are taken from the config file's folder)")
+        files.extend(hits)
+    return sorted(dict.fromkeys(files))
 
 
 def _power_callable(pk) -> Callable[[np.ndarray], np.ndarray]:

@@ -35,6 +35,8 @@ __all__ = [
     "wedges",
     "projected",
     "rebin_counts",
+    "Estimate",
+    "estimate_from_counts",
 ]
 
 Counts = Union[PairCounts, Sequence[PairCounts]]
@@ -415,6 +417,150 @@ def rebin_counts(pc: PairCounts, first=None, second=None) -> PairCounts:
         region_both=_merge(pc.region_both, 1, idx),
         region_one=_merge(pc.region_one, 1, idx),
     )
+
+
+def _rebin_all(counts: Counts, first, second) -> Counts:
+    if first == 1 and second == 1:
+        return counts
+    f = None if first == 1 else int(first)
+    g = None if second == 1 else int(second)
+    if isinstance(counts, PairCounts):
+        return rebin_counts(counts, f, g)
+    return [rebin_counts(c, f, g) for c in counts]
+
+
+def _first(counts: Counts) -> PairCounts:
+    return _as_list(counts)[0]
+
+
+@dataclass(frozen=True, eq=False)
+class Estimate:
+    """Correlation function of one analysis and its projections.
+
+    Attributes
+    ----------
+    estimator : str
+    s_edges, mu_edges : ndarray
+        Separation (Mpc/h) and mu bin edges of ``xi_smu``.
+    xi_smu : ndarray, shape (n_s, n_mu)
+    ells : tuple of int
+    multipoles : ndarray, shape (n_ells, n_s)
+    wedge_edges : ndarray, shape (n_wedges, 2)
+    wedges : ndarray, shape (n_wedges, n_s)
+    rp_edges, pi_edges : ndarray or None
+        (r_p, pi) edges in Mpc/h when projected counts were given.
+    xi_rppi : ndarray, shape (n_rp, n_pi), or None
+    wp : ndarray, shape (n_rp,), or None
+        w_p(r_p) in Mpc/h up to ``pi_max``.
+    pi_max : float or None
+    """
+
+    estimator: str
+    s_edges: np.ndarray
+    mu_edges: np.ndarray
+    xi_smu: np.ndarray
+    ells: tuple
+    multipoles: np.ndarray
+    wedge_edges: np.ndarray
+    wedges: np.ndarray
+    rp_edges: np.ndarray | None = None
+    pi_edges: np.ndarray | None = None
+    xi_rppi: np.ndarray | None = None
+    wp: np.ndarray | None = None
+    pi_max: float | None = None
+
+    @property
+    def s(self) -> np.ndarray:
+        """Volume-weighted mean separation of each s bin, 3/4 (b^4 - a^4)/(b^3 - a^3), Mpc/h."""
+        a, b = self.s_edges[:-1], self.s_edges[1:]
+        return 0.75 * (b**4 - a**4) / (b**3 - a**3)
+
+    def vector(self, kind: str = "multipoles") -> np.ndarray:
+        """Flattened estimator vector: "multipoles" [xi_l0(s..), xi_l1(s..), ...], "wedges",
+        or "wp"."""
+        if kind == "multipoles":
+            return self.multipoles.ravel()
+        if kind == "wedges":
+            return self.wedges.ravel()
+        if kind == "wp":
+            if self.wp is None:
+                raise InputError("no w_p: count pairs in (r_p, pi) (counts.projected = true)")
+            return np.asarray(self.wp)
+        raise ConfigError(f"estimator vector {kind!r} is not 'multipoles', 'wedges' or 'wp'")
+
+    def to_hdf5_group(self, group) -> None:
+        """Store in an h5py group (arrays as datasets; estimator, ells, pi_max as attributes)."""
+        for name in ("s_edges", "mu_edges", "xi_smu", "multipoles", "wedge_edges", "wedges",
+                     "rp_edges", "pi_edges", "xi_rppi", "wp"):
+            value = getattr(self, name)
+            if value is not None:
+                group.create_dataset(name, data=np.asarray(value))
+        group.create_dataset("s", data=self.s)
+        group.attrs["estimator"] = self.estimator
+        group.attrs["ells"] = np.asarray(self.ells, dtype=np.int64)
+        if self.pi_max is not None:
+            group.attrs["pi_max"] = float(self.pi_max)
+
+    @classmethod
+    def from_hdf5_group(cls, group) -> "Estimate":
+        """Read what :meth:`to_hdf5_group` wrote."""
+        def get(name):
+            return np.asarray(group[name][()]) if name in group else None
+
+        return cls(str(group.attrs["estimator"]), get("s_edges"), get("mu_edges"),
+                   get("xi_smu"), tuple(int(e) for e in group.attrs["ells"]), get("multipoles"),
+                   get("wedge_edges"), get("wedges"), get("rp_edges"), get("pi_edges"),
+                   get("xi_rppi"), get("wp"),
+                   float(group.attrs["pi_max"]) if "pi_max" in group.attrs else None)
+
+
+def _xi_of(counts, estimator, delete_region, cross_weight) -> np.ndarray:
+    missing = [k for k in ("DD", "RR") if k not in counts]
+    if missing:
+        raise InputError(f"pair counts {missing} are missing; the counts stage must store DD "
+                         "and RR (and DR for survey data)")
+    return correlation(counts["DD"], counts["RR"], counts.get("DR"), ds=counts.get("DS"),
+                       ss=counts.get("SS"), estimator=estimator, delete_region=delete_region,
+                       cross_weight=cross_weight)
+
+
+def estimate_from_counts(counts, settings: "EstimateSettings", rppi_counts=None, *,
+                         delete_region: int | None = None,
+                         cross_weight: float = 1.0) -> Estimate:
+    """xi(s, mu), multipoles, wedges [and w_p] from stored pair counts.
+
+    Parameters
+    ----------
+    counts : mapping
+        ``{"DD", "RR"[, "DR"][, "DS", "SS"]}`` -> PairCounts (RR may be a list of split sets)
+        in (s, mu) bins.
+    settings : EstimateSettings
+        Estimator, multipoles, wedges, pi_max and the s/mu merging factors.
+    rppi_counts : mapping, optional
+        The same counts in (r_p, pi) bins, for w_p.
+    delete_region, cross_weight
+        Jackknife sample (see :func:`normalised_counts`).
+    """
+    merged = {k: _rebin_all(v, settings.s_merge, settings.mu_merge) for k, v in counts.items()}
+    dd = _first(merged["DD"]) if "DD" in merged else None
+    if dd is None or dd.mode != "smu":
+        raise InputError("estimate needs (s, mu) pair counts (mode 'smu') under 'DD'")
+    s_edges, mu_edges = (np.asarray(e, dtype=np.float64) for e in dd.edges)
+    xi = _xi_of(merged, settings.estimator, delete_region, cross_weight)
+    poles = multipoles(xi, mu_edges, settings.ells, method=settings.multipole_method)
+    wedge_edges = np.asarray(settings.wedges, dtype=np.float64).reshape(-1, 2)
+    wdg = wedges(xi, mu_edges, settings.wedges) if len(settings.wedges) else \
+        np.zeros((0, xi.shape[0]))
+    extra = {}
+    if rppi_counts is not None:
+        xi_p = _xi_of(rppi_counts, settings.estimator, delete_region, cross_weight)
+        rp_edges, pi_edges = (np.asarray(e, dtype=np.float64)
+                              for e in _first(rppi_counts["DD"]).edges)
+        top = min(float(settings.pi_max), float(pi_edges[-1]))
+        extra = dict(rp_edges=rp_edges, pi_edges=pi_edges, xi_rppi=xi_p,
+                     wp=projected(xi_p, pi_edges, top), pi_max=top)
+    return Estimate(settings.estimator, s_edges, mu_edges, xi, tuple(settings.ells), poles,
+                    wedge_edges, wdg, **extra)
 
 
 @dataclass(frozen=True)

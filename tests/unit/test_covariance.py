@@ -11,7 +11,7 @@ import pytest
 from corrpipe.covariance import (CovarianceResult, gaussian_box_covariance, hartlap_factor,
                                  jackknife_covariance, jackknife_samples, mock_covariance,
                                  mohammad_percival_weight, percival_factors)
-from corrpipe.errors import InputError, StageError
+from corrpipe.errors import ConfigError, InputError, StageError
 from corrpipe.estimators import multipoles
 from corrpipe.regions import cube_regions
 
@@ -160,3 +160,24 @@ def test_hdf5_round_trip(tmp_path):
         assert f["covariance"].attrs["condition_number"] == pytest.approx(cov.condition_number)
     assert back.kind == "mocks" and back.n_samples == 50
     assert np.array_equal(back.matrix, cov.matrix) and np.array_equal(back.mean, cov.mean)
+
+
+def test_jackknife_from_counts_and_mock_paths(poisson_box_counts, tmp_path):
+    # wiring check against jackknife_samples + jackknife_covariance (internal consistency)
+    from corrpipe.covariance import CovarianceSettings, expand_mock_paths, jackknife_from_counts
+    from corrpipe.estimators import EstimateSettings
+
+    dd, dr, rr, mu_edges = poisson_box_counts
+    est = EstimateSettings(ells=(0, 2))
+    cov = jackknife_from_counts({"DD": dd, "DR": dr, "RR": rr}, est, CovarianceSettings(),
+                                progress=False)
+    samples, _ = jackknife_samples(dd, rr, dr, vector=lambda xi: multipoles(
+        xi, mu_edges, (0, 2)).ravel(), progress=False)
+    assert np.allclose(cov.matrix, jackknife_covariance(samples).matrix, rtol=1e-10)
+    assert cov.n_samples == 216 and cov.meta["cross_weight"] == 1.0
+    for i in range(3):
+        (tmp_path / f"mock_{i}.fits").write_text("x")
+    files = expand_mock_paths([str(tmp_path / "mock_*.fits"), str(tmp_path / "mock_1.fits")])
+    assert [Path(f).name for f in files] == ["mock_0.fits", "mock_1.fits", "mock_2.fits"]
+    with pytest.raises(ConfigError, match="matches no file"):
+        expand_mock_paths([str(tmp_path / "none_*.fits")])
