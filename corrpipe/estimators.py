@@ -581,3 +581,11 @@ class EstimateSettings:
                            low=1)
     mu_merge: int = setting(1, "merge this many adjacent stored mu bins before estimating",
                             low=1)
+
+    def validate(self) -> None:
+        """Cross-field checks run when the config is loaded."""
+        if len(set(self.ells)) != len(self.ells) or not self.ells:
+            raise ConfigError(f"estimate.ells = {list(self.ells)} must list distinct orders")
+        for i, (lo, hi) in enumerate(self.wedges):
+            if not lo < hi:
+                raise ConfigError(f"estimate.wedges[{i}] = [{lo}, {hi}] needs mu_lo < mu_hi")

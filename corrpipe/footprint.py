@@ -515,6 +515,11 @@ class FootprintSettings:
     data_min_count: int = setting(1, "objects a pixel needs to count as observed",
                                   low=1)
 
+    def validate(self) -> None:
+        """Check the boxes when the config is loaded, before any stage runs."""
+        _boxes_from_config(self.boxes, "boxes")
+        _boxes_from_config(self.vetoes, "vetoes")
+
 
 def _boxes_from_config(entries: Sequence, key: str) -> tuple:
     boxes = []

@@ -362,3 +362,16 @@ def test_estimate_from_counts_assembles_the_projections(tmp_path):
     assert np.array_equal(back.multipoles, est_p.multipoles, equal_nan=True)
     with pytest.raises(InputError, match="missing"):
         estimate_from_counts({"DD": dd}, settings)
+
+
+def test_estimate_settings_checked_on_load():
+    # config errors name the key (common practice for config validation)
+    from corrpipe.config import validate_section
+    from corrpipe.estimators import EstimateSettings
+
+    with pytest.raises(ConfigError, match=r"wedges\[0\]"):
+        validate_section(EstimateSettings,
+                         {"wedges": [[0.5, 0.2]]}, "estimate", "run.toml", Path("."))
+    with pytest.raises(ConfigError, match="distinct"):
+        validate_section(EstimateSettings,
+                         {"ells": [0, 2, 2]}, "estimate", "run.toml", Path("."))

@@ -227,3 +227,29 @@ def test_bad_map_files_give_clear_errors(tmp_path):
     _write_map(empty, np.full(12 * 4, 0.3), 2, "RING")
     with pytest.raises(InputError, match="footprint is empty"):
         read_healpix_map(empty, threshold=0.5)
+
+
+def test_healpix_map_with_veto_boxes(tmp_path):
+    # full-sky map minus a veto zone: area = 4 pi - zone area (zone formula, common practice),
+    # up to the Monte Carlo error of the kept fraction (2e6 samples)
+    path = tmp_path / "full.fits"
+    _write_map(path, np.ones(12 * 8**2), 8, "RING")
+    veto = SkyBox(20, 80, -30, 10)
+    s = FootprintSettings(kind="healpix", healpix_file=str(path),
+                          vetoes=((20.0, 80.0, -30.0, 10.0),))
+    fp = footprint_from_settings(s)
+    p = veto.area_sr() / (4 * np.pi)
+    sigma = 4 * np.pi * np.sqrt(p * (1 - p) / 2e6)
+    assert abs(fp.area_sr() - (4 * np.pi - veto.area_sr())) < 4 * sigma
+    ra, dec = fp.sample(10_000, np.random.default_rng(2))
+    assert not veto.contains(ra, dec).any()
+
+
+def test_settings_validate_boxes_on_load():
+    from pathlib import Path
+
+    from corrpipe.config import validate_section
+
+    with pytest.raises(ConfigError, match=r"vetoes\[0\]"):
+        validate_section(FootprintSettings, {"vetoes": [[0, 400, 0, 1]]}, "footprint",
+                         "run.toml", Path("."))
