@@ -181,3 +181,24 @@ def test_jackknife_from_counts_and_mock_paths(poisson_box_counts, tmp_path):
     assert [Path(f).name for f in files] == ["mock_0.fits", "mock_1.fits", "mock_2.fits"]
     with pytest.raises(ConfigError, match="matches no file"):
         expand_mock_paths([str(tmp_path / "none_*.fits")])
+
+
+def test_gaussian_covariance_kaiser_mu_weighting():
+    # for a k-independent spectrum, sigma^2_ll is constant in k and the orthogonality of
+    # spherical Bessel functions gives C_ll(s_i, s_i) = sigma^2_ll / V_i with
+    # sigma^2_ll = (2l+1)^2/V ∫_{-1}^{1} [P0 (1 + beta mu^2)^2 + 1/n]^2 L_l^2 dmu
+    # (Grieb et al. 2016 [from memory]); the mu integral is checked with scipy.integrate.quad
+    from scipy import integrate, special
+
+    nbar, volume, p0, beta = 3e-4, 1e9, 2000.0, 0.6
+    edges = np.linspace(30, 110, 9)
+    cov = gaussian_box_covariance(lambda k: np.full_like(k, p0), nbar, volume, edges,
+                                  ells=(0, 2, 4), beta=beta, k_max=12.0)
+    shell = 4 / 3 * np.pi * (edges[1:] ** 3 - edges[:-1] ** 3)
+    n_s = shell.size
+    for a, ell in enumerate((0, 2, 4)):
+        mu_int = integrate.quad(lambda m: (p0 * (1 + beta * m * m) ** 2 + 1 / nbar) ** 2
+                                * special.eval_legendre(ell, m) ** 2, -1, 1)[0]
+        expect = (2 * ell + 1) ** 2 / volume * mu_int / shell
+        block = cov.matrix[a * n_s:(a + 1) * n_s, a * n_s:(a + 1) * n_s]
+        assert np.allclose(np.diag(block), expect, rtol=0.01)
