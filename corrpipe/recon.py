@@ -29,6 +29,7 @@ from tqdm.auto import tqdm
 
 from corrpipe import mesh
 from corrpipe.errors import CheckpointError, ConfigError, InputError, StageError
+from corrpipe.recon_kernels import read_vector_kernel
 from corrpipe.settings import setting
 
 __all__ = [
@@ -725,15 +726,17 @@ def survey_displacement(delta_k: np.ndarray, geometry: MeshGeometry, *, bias: fl
 
 def _displacement_at(theta_k: np.ndarray, geometry: MeshGeometry, positions: list,
                      scheme: str, workers) -> list:
-    """psi (N, 3) read at each array of ``positions``, one mesh component at a time."""
-    spectral = _Spectral(geometry.n_mesh, geometry.box_size, theta_k.real.dtype.type, workers)
-    out = [np.empty((p.shape[0], 3)) for p in positions]
-    origin = np.asarray(geometry.origin)
-    for a in range(3):
-        comp = spectral.component(theta_k, a)
-        for p, o in zip(positions, out):
-            o[:, a] = mesh.interpolate(comp, p, geometry.box_size, scheme, origin)
-        del comp
+    """psi (N, 3) read at each array of ``positions`` (Mpc/h) with the assignment kernel."""
+    psi = mesh.displacement_fourier(theta_k, geometry.box_size, workers)
+    order = mesh.SCHEMES[scheme]
+    scale = geometry.n_mesh / geometry.box_size
+    origin = np.asarray(geometry.origin, dtype=np.float64)
+    out = []
+    for p in positions:
+        cells = np.ascontiguousarray(np.mod((p - origin) * scale, geometry.n_mesh))
+        values = np.empty((p.shape[0], 3), dtype=np.float64)
+        read_vector_kernel(cells, order, psi, values)
+        out.append(values)
     return out
 
 
