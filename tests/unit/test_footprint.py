@@ -253,3 +253,19 @@ def test_settings_validate_boxes_on_load():
     with pytest.raises(ConfigError, match=r"vetoes\[0\]"):
         validate_section(FootprintSettings, {"vetoes": [[0, 400, 0, 1]]}, "footprint",
                          "run.toml", Path("."))
+
+
+def test_map_stored_in_1024_value_rows(tmp_path):
+    # HEALPix FITS convention: implicit maps are often stored as rows of 1024 values (TFORM
+    # '1024E'); they are read in row-major order
+    nside = 16
+    values = _cap_map(nside, "ring")
+    col = fits.Column(name="T", format="1024E", array=values.reshape(-1, 1024))
+    hdu = fits.BinTableHDU.from_columns([col])
+    hdu.header["NSIDE"], hdu.header["ORDERING"] = nside, "RING"
+    path = tmp_path / "rows.fits"
+    fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(path)
+    fp = read_healpix_map(path, "T")
+    assert np.array_equal(fp.values > 0, values > 0)
+    with pytest.raises(InputError, match="no column 'Q'"):
+        read_healpix_map(path, "Q")
