@@ -456,7 +456,7 @@ def shot_noise_window(n_mesh: int, box_size: float, scheme: str = "cic") -> np.n
     return out
 
 
-def _mesh_power(delta, box_size, scheme, shot_noise, other, workers):
+def _mesh_power(delta, box_size, scheme, shot_noise, other, workers, other_scheme=None):
     """|F|^2 V / n^6 (or the cross term), shot noise removed, window deconvolved."""
     n = delta.shape[0]
     f1 = to_fourier(delta, workers)
@@ -473,8 +473,14 @@ def _mesh_power(delta, box_size, scheme, shot_noise, other, workers):
             p3 -= shot_noise
         else:
             p3 -= shot_noise * shot_noise_window(n, box_size, scheme)
+    if other is None:
+        if scheme is not None:
+            p3 /= assignment_window(n, box_size, scheme) ** 2
+        return p3
     if scheme is not None:
-        p3 /= assignment_window(n, box_size, scheme) ** 2
+        p3 /= assignment_window(n, box_size, scheme)
+    if other_scheme is not None:
+        p3 /= assignment_window(n, box_size, other_scheme)
     return p3
 
 
@@ -495,6 +501,7 @@ def power_multipoles(
     scheme: str | None = "cic",
     shot_noise: float = 0.0,
     other: np.ndarray | None = None,
+    other_scheme: str | None = "same",
     workers: int | None = None,
 ) -> PowerMultipoles:
     """Measure P_ell(k) of a density-contrast mesh (or the cross-spectrum with ``other``).
@@ -520,6 +527,9 @@ def power_multipoles(
         cross-spectra.
     other : ndarray, shape (n, n, n), optional
         Second field for a cross-spectrum Re[F1 F2*].
+    other_scheme : str or None
+        Window to deconvolve from ``other``: ``"same"`` (default) uses ``scheme``; None for a
+        field that was not painted (e.g. a linear density generated on the mesh).
 
     Returns
     -------
@@ -534,7 +544,9 @@ def power_multipoles(
     n = _check_field(delta, "delta")
     if other is not None and other.shape != delta.shape:
         raise InputError(f"cross-spectrum fields differ in shape: {delta.shape} vs {other.shape}")
-    p3 = _mesh_power(delta, box_size, scheme, shot_noise, other, workers)
+    if other_scheme == "same":
+        other_scheme = scheme
+    p3 = _mesh_power(delta, box_size, scheme, shot_noise, other, workers, other_scheme)
     kx, ky, kz = wavenumbers(n, box_size)
     kmag = np.sqrt(kx**2 + ky**2 + kz**2)
     k_los = (kx, ky, kz)[los_axis]

@@ -1,0 +1,31 @@
+"""Mock catalogues: lognormal and Zel'dovich boxes, survey carving, known dilations.
+
+Public entry points (see the submodules for details):
+
+* :func:`lognormal_box`, :func:`zeldovich_box` -> :class:`BoxMock`
+* :func:`carve_survey` -> :class:`SurveyMock`; :func:`survey_randoms`; file writers
+* :func:`expected_dilation` -> :class:`Dilation`
+* :class:`MockSettings` (the ``[mock]`` config table) and :func:`write_mocks`
+"""
+
+from corrpipe.mocks.box import (BoxMock, clipped_linear_bias, displacement_variance,
+                                lagrangian_bias_for, linear_density, lognormal_box,
+                                zeldovich_box)
+from corrpipe.mocks.dilation import Dilation, expected_dilation
+from corrpipe.mocks.make import (MockFiles, effective_redshift, footprint_of, make_box_mock,
+                                 make_survey_mock, mock_power, nz_of, true_cosmology,
+                                 write_mocks)
+from corrpipe.mocks.settings import MockSettings
+from corrpipe.mocks.survey import (SurveyMock, carve_survey, shell_volume_fraction_outside,
+                                   survey_randoms, tabulated_nz, write_box_catalogue,
+                                   write_sky_catalogue)
+
+__all__ = [
+    "BoxMock", "lognormal_box", "zeldovich_box", "linear_density", "clipped_linear_bias",
+    "lagrangian_bias_for", "displacement_variance",
+    "Dilation", "expected_dilation",
+    "SurveyMock", "carve_survey", "survey_randoms", "tabulated_nz",
+    "shell_volume_fraction_outside", "write_sky_catalogue", "write_box_catalogue",
+    "MockSettings", "MockFiles", "write_mocks", "make_box_mock", "make_survey_mock",
+    "true_cosmology", "mock_power", "footprint_of", "nz_of", "effective_redshift",
+]

@@ -1,0 +1,232 @@
+"""Make and write the mocks a :class:`MockSettings` table describes (the mock command's work)."""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from corrpipe.errors import ConfigError, InputError
+from corrpipe.mocks.box import BoxMock, lognormal_box, zeldovich_box
+from corrpipe.mocks.dilation import Dilation, expected_dilation
+from corrpipe.mocks.settings import MockSettings
+from corrpipe.mocks.survey import (SurveyMock, carve_survey, survey_randoms, tabulated_nz,
+                                   write_box_catalogue, write_sky_catalogue)
+
+__all__ = ["MockFiles", "true_cosmology", "mock_power", "make_box_mock", "make_survey_mock",
+           "footprint_of", "nz_of", "write_mocks", "effective_redshift"]
+
+_LOS = {"x": 0, "y": 1, "z": 2}
+
+
+@dataclass(frozen=True)
+class MockFiles:
+    """What one written mock consists of.
+
+    Attributes
+    ----------
+    data : Path
+        Catalogue file.
+    randoms : Path or None
+        Matching random catalogue (survey mode with randoms_factor > 0).
+    truth : Path
+        JSON file with the settings, the seed and the expected dilation.
+    n_objects : int
+        Number of objects in the data catalogue.
+    dilation : Dilation
+        Expected dilation against the fiducial cosmology.
+    """
+
+    data: Path
+    randoms: Path | None
+    truth: Path
+    n_objects: int
+    dilation: Dilation
+
+
+def true_cosmology(settings: MockSettings):
+    """The cosmology the mocks are made in: ``true_preset`` with the ``true_*`` overrides."""
+    from corrpipe.cosmology import preset
+
+    base = preset(settings.true_preset)
+    overrides = {name: getattr(settings, "true_" + name)
+                 for name in ("h", "omega_m", "omega_b", "sigma8", "w0")
+                 if getattr(settings, "true_" + name) is not None}
+    return dataclasses.replace(base, **overrides) if overrides else base
+
+
+def mock_power(settings: MockSettings, cosmology) -> Callable:
+    """Linear matter P(k) at the box redshift: EH98 of ``cosmology`` or the ``power_file``."""
+    from corrpipe.theory.linear_power import LinearPower
+
+    if settings.power_file:
+        return LinearPower.from_file(settings.power_file, cosmology, z=settings.redshift)
+    return LinearPower.eisenstein_hu(cosmology, z=settings.redshift)
+
+
+def _growth_rate(settings: MockSettings, cosmology) -> float:
+    if not settings.rsd:
+        return 0.0
+    if settings.growth_rate is not None:
+        return float(settings.growth_rate)
+    return float(np.asarray(cosmology.growth_rate(settings.redshift)))
+
+
+def make_box_mock(settings: MockSettings, seed: int, *, cosmology=None, power=None,
+                  progress: bool = True) -> BoxMock:
+    """Draw one box mock with the settings' generator."""
+    cosmology = true_cosmology(settings) if cosmology is None else cosmology
+    power = mock_power(settings, cosmology) if power is None else power
+    dtype = np.float32 if settings.precision == "float32" else np.float64
+    common = dict(alpha_par=settings.alpha_par, alpha_perp=settings.alpha_perp,
+                  los_axis=_LOS[settings.los_axis], dtype=dtype, progress=progress)
+    args = (power, settings.box_size, settings.n_mesh, settings.nbar, settings.bias,
+            _growth_rate(settings, cosmology), seed)
+    if settings.kind == "lognormal":
+        return lognormal_box(*args, **common)
+    return zeldovich_box(*args, bias_smoothing=settings.bias_smoothing, **common)
+
+
+def footprint_of(settings: MockSettings):
+    """The union of the settings' RA/Dec boxes as a :class:`corrpipe.footprint.BoxFootprint`."""
+    from corrpipe.footprint import BoxFootprint, SkyBox
+
+    boxes = []
+    for i, entry in enumerate(settings.footprint):
+        try:
+            boxes.append(SkyBox(*[float(v) for v in entry]))
+        except (ConfigError, TypeError, ValueError) as exc:
+            raise ConfigError(f"mock.footprint[{i}] = {list(entry)}: {exc}") from exc
+    return BoxFootprint(include=tuple(boxes))
+
+
+def nz_of(settings: MockSettings) -> Callable | None:
+    """The target n(z) of the settings (None: constant nbar)."""
+    if not settings.nz_redshifts:
+        return None
+    return tabulated_nz(settings.nz_redshifts, settings.nz_densities)
+
+
+def make_survey_mock(settings: MockSettings, seed: int, *, cosmology=None, power=None,
+                     progress: bool = True) -> SurveyMock:
+    """Draw one box mock and carve the settings' survey out of it."""
+    cosmology = true_cosmology(settings) if cosmology is None else cosmology
+    box = make_box_mock(settings, seed, cosmology=cosmology, power=power, progress=progress)
+    return carve_survey(box, cosmology, footprint_of(settings), settings.z_min, settings.z_max,
+                        observer=settings.observer, nz=nz_of(settings), rsd=settings.rsd,
+                        replicate=settings.replicate, seed=np.random.default_rng([seed, 1]))
+
+
+def effective_redshift(z, weights=None) -> float:
+    """Weighted mean redshift of a sample (the usual simple z_eff; common practice)."""
+    z = np.asarray(z, dtype=float)
+    if z.size == 0:
+        raise InputError("cannot take the effective redshift of an empty sample")
+    w = np.ones_like(z) if weights is None else np.asarray(weights, dtype=float)
+    return float(np.sum(w * z) / np.sum(w))
+
+
+def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: bool = True,
+                echo: Callable | None = None, overwrite: bool = False) -> list[MockFiles]:
+    """Write ``settings.n_mocks`` mocks (and randoms) into ``output_dir``.
+
+    Parameters
+    ----------
+    settings : MockSettings
+        The ``[mock]`` table.
+    output_dir : str or Path
+        Folder for the files ``{name}_{i:04d}.{fits|h5}``, ``..._randoms...`` and
+        ``..._truth.json``.
+    fiducial : corrpipe.cosmology.Cosmology, optional
+        Analysis cosmology for the expected dilation (default: the ``planck2018`` preset).
+    progress : bool
+        Progress bars.
+    echo : callable, optional
+        Receives one line per written mock.
+    overwrite : bool
+        Replace existing files.
+
+    Returns
+    -------
+    list of MockFiles
+    """
+    from corrpipe.cosmology import preset
+
+    settings.validate()
+    out = Path(output_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    cosmo = true_cosmology(settings)
+    fid = preset("planck2018") if fiducial is None else fiducial
+    power = mock_power(settings, cosmo)
+    ext = ".fits" if settings.format == "fits" else ".h5"
+    written = []
+    for i in range(settings.n_mocks):
+        seed = settings.seed + i
+        stem = f"{settings.name}_{i:04d}"
+        base_meta = {"mock_kind": settings.kind, "seed": seed, "bias": settings.bias,
+                     "nbar": settings.nbar, "box_redshift": settings.redshift}
+        randoms_path = None
+        if settings.geometry == "box":
+            box = make_box_mock(settings, seed, cosmology=cosmo, power=power, progress=progress)
+            pos = box.redshift_space_positions() if settings.rsd else box.positions
+            z_eff = settings.redshift if settings.redshift > 0 else 1e-3
+            dil = Dilation(alpha_par=settings.alpha_par, alpha_perp=settings.alpha_perp,
+                           alpha_iso=settings.alpha_par ** (1 / 3) * settings.alpha_perp ** (2 / 3),
+                           z_eff=z_eff)
+            meta = dict(base_meta, box_size=box.box_size, los_axis=settings.los_axis,
+                        alpha_par=dil.alpha_par, alpha_perp=dil.alpha_perp,
+                        growth_rate=box.growth_rate)
+            data_path = write_box_catalogue(out / (stem + ext), pos, meta=meta,
+                                            overwrite=overwrite)
+            n_obj = len(box)
+        else:
+            sky = make_survey_mock(settings, seed, cosmology=cosmo, power=power,
+                                   progress=progress)
+            if len(sky) == 0:
+                raise InputError("the carved survey is empty: check footprint, redshift range "
+                                 "and observer against the box")
+            z_eff = effective_redshift(sky.z)
+            dil = expected_dilation(cosmo, fid, z_eff)
+            meta = dict(base_meta, **{k: v for k, v in sky.meta.items()}, z_eff=z_eff,
+                        alpha_par=dil.alpha_par, alpha_perp=dil.alpha_perp,
+                        alpha_iso=dil.alpha_iso)
+            data_path = write_sky_catalogue(out / (stem + ext), sky.ra, sky.dec, sky.z,
+                                            sky.weights, meta=meta, overwrite=overwrite,
+                                            extra={"Z_COSMO": sky.z_cosmo})
+            n_obj = len(sky)
+            if settings.randoms_factor > 0:
+                n_r = int(round(settings.randoms_factor * len(sky)))
+                ra, dec, zr = survey_randoms(footprint_of(settings), cosmo, settings.z_min,
+                                             settings.z_max, n_r, nz=nz_of(settings),
+                                             seed=np.random.default_rng([seed, 2]))
+                randoms_path = write_sky_catalogue(out / (stem + "_randoms" + ext), ra, dec,
+                                                   zr, meta={"seed": seed},
+                                                   overwrite=overwrite)
+        truth = {"settings": _jsonable(dataclasses.asdict(settings)), "seed": seed,
+                 "n_objects": n_obj, "dilation": dil.as_dict(),
+                 "true_cosmology": _jsonable(dataclasses.asdict(cosmo)),
+                 "fiducial_cosmology": _jsonable(dataclasses.asdict(fid))}
+        truth_path = out / (stem + "_truth.json")
+        tmp = truth_path.with_suffix(".json.part")
+        tmp.write_text(json.dumps(truth, indent=2))
+        tmp.replace(truth_path)
+        written.append(MockFiles(data=Path(data_path), randoms=randoms_path, truth=truth_path,
+                                 n_objects=n_obj, dilation=dil))
+        if echo is not None:
+            echo(f"wrote {data_path} ({n_obj} objects; alpha_par = {dil.alpha_par:.4f}, "
+                 f"alpha_perp = {dil.alpha_perp:.4f})")
+    return written
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {k: _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.floating, np.integer)):
+        return obj.item()
+    return obj

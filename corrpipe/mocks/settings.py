@@ -1,0 +1,111 @@
+"""The ``[mock]`` config table: what mock catalogues to write and how to make them."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from corrpipe.errors import ConfigError
+from corrpipe.settings import setting
+
+__all__ = ["MockSettings"]
+
+
+@dataclass(frozen=True)
+class MockSettings:
+    """Config table ``[mock]`` for the mock-writing command.
+
+    Box mode writes periodic boxes (columns x, y, z in Mpc/h, redshift-space along
+    ``los_axis``); survey mode carves a sky catalogue (RA, DEC, Z, WEIGHT) out of each box
+    and, if ``randoms_factor`` > 0, a matching random catalogue. The mock is made in the *true*
+    cosmology (``true_preset`` plus overrides); the expected dilation against the fiducial
+    ``[cosmology]`` is written beside each catalogue.
+    """
+
+    kind: str = setting("zeldovich", "generator: zeldovich (1LPT, BAO damped by bulk flows) or "
+                        "lognormal (Coles & Jones 1991)", choices=("zeldovich", "lognormal"))
+    geometry: str = setting("box", "write periodic boxes or carve sky surveys",
+                            choices=("box", "survey"))
+    n_mocks: int = setting(1, "number of mocks (seeds seed, seed + 1, ...)", low=1, high=100000)
+    seed: int = setting(1, "seed of the first mock", low=0)
+    box_size: float = setting(1000.0, "side of the periodic box", unit="Mpc/h", low=0.0,
+                              low_open=True, high=20000.0)
+    n_mesh: int = setting(256, "mesh nodes per box side (cell = box_size / n_mesh)", low=8,
+                          high=2048)
+    nbar: float = setting(3e-4, "mean number density of the box", unit="(h/Mpc)^3", low=0.0,
+                          low_open=True, high=1.0)
+    bias: float = setting(2.0, "linear (Eulerian) galaxy bias", low=0.0, low_open=True,
+                          high=10.0)
+    redshift: float = setting(0.5, "redshift of the box: linear P(k) and growth rate",
+                              low=0.0, high=10.0)
+    growth_rate: float | None = setting(None, "linear growth rate f (empty: from the true "
+                                        "cosmology at the box redshift)", low=0.0, high=3.0)
+    rsd: bool = setting(True, "apply linear redshift-space distortions")
+    power_file: str | None = setting(None, "table of the linear P(k) at the box redshift, "
+                                     "columns k [h/Mpc] and P [(Mpc/h)^3] (empty: EH98)",
+                                     path=True)
+    true_preset: str = setting("planck2018", "named cosmology the mock is made in")
+    true_h: float | None = setting(None, "override of h for the true cosmology", low=0.2,
+                                   high=1.5)
+    true_omega_m: float | None = setting(None, "override of Omega_m for the true cosmology",
+                                         low=0.0, high=1.5, low_open=True)
+    true_omega_b: float | None = setting(None, "override of Omega_b for the true cosmology",
+                                         low=0.0, high=0.5, low_open=True)
+    true_sigma8: float | None = setting(None, "override of sigma8 for the true cosmology",
+                                        low=0.0, high=2.0, low_open=True)
+    true_w0: float | None = setting(None, "override of w0 for the true cosmology", low=-3.0,
+                                    high=0.0)
+    alpha_par: float = setting(1.0, "box mode: injected line-of-sight dilation", low=0.5,
+                               high=2.0)
+    alpha_perp: float = setting(1.0, "box mode: injected transverse dilation", low=0.5,
+                                high=2.0)
+    los_axis: str = setting("z", "box mode: line-of-sight axis", choices=("x", "y", "z"))
+    bias_smoothing: float = setting(0.0, "zeldovich: smoothing of the field that sets the "
+                                    "Lagrangian selection weights", unit="Mpc/h", low=0.0,
+                                    high=100.0)
+    precision: str = setting("float64", "mesh precision (float32 halves memory)",
+                             choices=("float64", "float32"))
+    observer: tuple[float, float, float] = setting((0.0, 0.0, 0.0), "survey mode: observer "
+                                                   "position in the box frame", unit="Mpc/h")
+    z_min: float = setting(0.2, "survey mode: lowest observed redshift", low=0.0)
+    z_max: float = setting(0.6, "survey mode: highest observed redshift (exclusive)",
+                           low=0.0, low_open=True, high=10.0)
+    footprint: tuple[tuple[float, float, float, float], ...] = setting(
+        ((10.0, 80.0, 5.0, 45.0),), "survey mode: RA/Dec boxes "
+                               "[ra_min, ra_max, dec_min, dec_max] in degrees (union)")
+    nz_redshifts: tuple[float, ...] = setting((), "survey mode: redshift nodes of the target "
+                                              "n(z) (empty: constant nbar)")
+    nz_densities: tuple[float, ...] = setting((), "survey mode: n(z) at those nodes",
+                                              unit="(h/Mpc)^3", low=0.0)
+    replicate: bool = setting(False, "survey mode: tile the periodic box if the survey "
+                              "reaches beyond it")
+    randoms_factor: float = setting(10.0, "survey mode: randoms per data object (0: none)",
+                                    low=0.0, high=1000.0)
+    format: str = setting("fits", "output file format", choices=("fits", "hdf5"))
+    name: str = setting("mock", "file name prefix of the written catalogues")
+
+    def validate(self) -> None:
+        """Cross-field checks."""
+        if self.geometry == "survey":
+            if self.z_min >= self.z_max:
+                raise ConfigError(f"mock: z_min = {self.z_min} must be below z_max = "
+                                  f"{self.z_max}")
+            if len(self.nz_redshifts) != len(self.nz_densities):
+                raise ConfigError(f"mock: nz_redshifts has {len(self.nz_redshifts)} entries but "
+                                  f"nz_densities has {len(self.nz_densities)}; give one density "
+                                  "per redshift node")
+            if len(self.nz_redshifts) == 1:
+                raise ConfigError("mock: an n(z) table needs at least two nodes")
+            if len(self.footprint) == 0:
+                raise ConfigError("mock: footprint needs at least one RA/Dec box")
+            for i, box in enumerate(self.footprint):
+                if len(box) != 4:
+                    raise ConfigError(f"mock: footprint[{i}] = {list(box)} must have four "
+                                      "numbers [ra_min, ra_max, dec_min, dec_max] (degrees)")
+            if self.alpha_par != 1.0 or self.alpha_perp != 1.0:
+                raise ConfigError("mock: alpha_par/alpha_perp stretch boxes only; in survey "
+                                  "mode inject a dilation through the true_* cosmology keys")
+            if len(self.observer) != 3:
+                raise ConfigError(f"mock: observer must be three numbers (x, y, z in Mpc/h); "
+                                  f"got {list(self.observer)}")
+        if self.n_mesh % 2:
+            raise ConfigError(f"mock: n_mesh = {self.n_mesh} must be even (FFT layout)")
