@@ -118,7 +118,7 @@ def normalised_counts(counts: Counts, delete_region: int | None = None,
     return total_w / total_n
 
 
-def _safe_divide(num: np.ndarray, den: np.ndarray, what: str) -> np.ndarray:
+def _safe_divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:
     den = np.asarray(den, dtype=np.float64)
     out = np.full(np.broadcast(num, den).shape, np.nan)
     np.divide(num, den, out=out, where=den > 0)
@@ -130,28 +130,28 @@ def landy_szalay(dd: np.ndarray, dr: np.ndarray, rr: np.ndarray) -> np.ndarray:
 
     Bins with RR = 0 give NaN.
     """
-    return _safe_divide(dd - 2.0 * dr + rr, rr, "RR")
+    return _safe_divide(dd - 2.0 * dr + rr, rr)
 
 
 def peebles_hauser(dd: np.ndarray, rr: np.ndarray) -> np.ndarray:
     """DD / RR - 1, the natural estimator (Peebles & Hauser 1974)."""
-    return _safe_divide(dd, rr, "RR") - 1.0
+    return _safe_divide(dd, rr) - 1.0
 
 
 def davis_peebles(dd: np.ndarray, dr: np.ndarray) -> np.ndarray:
     """DD / DR - 1 (Davis & Peebles 1983)."""
-    return _safe_divide(dd, dr, "DR") - 1.0
+    return _safe_divide(dd, dr) - 1.0
 
 
 def hamilton(dd: np.ndarray, dr: np.ndarray, rr: np.ndarray) -> np.ndarray:
     """DD RR / DR^2 - 1 (Hamilton 1993)."""
-    return _safe_divide(dd * rr, dr**2, "DR") - 1.0
+    return _safe_divide(dd * rr, dr**2) - 1.0
 
 
 def shifted_landy_szalay(dd: np.ndarray, ds: np.ndarray, ss: np.ndarray,
                          rr: np.ndarray) -> np.ndarray:
     """(DD - 2 DS + SS) / RR with shifted randoms S (Padmanabhan et al. 2012 [from memory])."""
-    return _safe_divide(dd - 2.0 * ds + ss, rr, "RR")
+    return _safe_divide(dd - 2.0 * ds + ss, rr)
 
 
 def correlation(dd: Counts, rr: Counts, dr: Counts | None = None, *,
