@@ -42,7 +42,7 @@ def test_estimator_formulas():
     assert np.isnan(landy_szalay(dd, dr, np.array([0.0, 1.0]))[0])
 
 
-def _poisson_trials(n_trials=250, n_data=400, n_rand=8000, box=100.0, seed=5):
+def _poisson_trials(n_trials=200, n_data=400, n_rand=5000, box=100.0, seed=5):
     """LS and PH xi on many uniform catalogues; counts from scipy cKDTree.count_neighbors."""
     rng = np.random.default_rng(seed)
     edges = np.array([3.0, 5.0, 7.0, 9.0, 11.0, 25.0, 35.0, 45.0])
@@ -71,14 +71,16 @@ def poisson_trials():
 
 def test_ls_on_poisson_is_unbiased_with_poisson_scatter(poisson_trials):
     # Landy & Szalay 1993 (REFERENCES §4 [from memory]): on Poisson catalogues xi_LS averages
-    # to 0 with variance 1/N_pairs per bin (N_pairs = n(n-1)/2 G_p). 250 trials: sample
-    # variance is known to ~9 % per bin, ~4 % over the 5 small bins
+    # to 0 with variance 1/N_pairs per bin (N_pairs = n(n-1)/2 G_p) for n_r -> infinity. With
+    # one fixed random set of n_r points, the data-induced scatter of 2 DR adds 2q/N_pairs,
+    # q = n/n_r (Poisson count of randoms around each object; common practice).
+    # 200 trials: sample variance known to ~10 % per bin, ~5 % over the 4 small bins
     ls, _, dp, ham, n_pairs = poisson_trials
     small = slice(0, 4)
     mean, var = ls.mean(axis=0), ls.var(axis=0, ddof=1)
     assert np.all(np.abs(mean) < 4 * np.sqrt(var / ls.shape[0]))
-    ratio = np.mean(var[small] * n_pairs[small])
-    assert 0.85 < ratio < 1.2
+    ratio = np.mean(var[small] * n_pairs[small]) / (1 + 2 * 400 / 5000)
+    assert 0.85 < ratio < 1.15
     for other in (dp, ham):  # the other estimators are also unbiased here
         assert np.all(np.abs(other.mean(axis=0)) < 4 * np.sqrt(other.var(axis=0) / len(other)))
 
