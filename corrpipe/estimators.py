@@ -187,7 +187,8 @@ def correlation(dd: Counts, rr: Counts, dr: Counts | None = None, *,
     if estimator == "peebles_hauser":
         return peebles_hauser(n_dd, n_rr)
     if dr is None:
-        if estimator == "landy_szalay" and _as_list(rr)[0].box_size is not None:
+        periodic = _as_list(rr)[0].box_size is not None or _as_list(dd)[0].box_size is not None
+        if estimator == "landy_szalay" and periodic:
             return peebles_hauser(n_dd, n_rr)  # periodic box: DR/RR -> 1 exactly
         raise InputError(f"estimator {estimator!r} needs DR counts; count data-random pairs "
                          "or use the peebles_hauser estimator with an analytic box RR")
