@@ -160,39 +160,57 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
         raise InputError(f"fit: n_walkers = {n_walkers} must be at least twice the number of "
                          f"sampled parameters ({n_dim}); raise fit.n_walkers")
     note = ""
-    backend = None
+    stored_chain = np.empty((0, n_walkers, n_dim))
+    stored_lp = np.empty((0, n_walkers))
+    stored_accepted = np.zeros(n_walkers)
+    path = None
+    resume_state = None
     if progress_path is not None:
         path = Path(progress_path)
         path.parent.mkdir(parents=True, exist_ok=True)
         try:
             backend, note = _open_backend(path, n_walkers, n_dim, model_hash)
+            if backend.iteration > 0:
+                stored_chain = backend.get_chain()
+                stored_lp = backend.get_log_prob()
+                stored_accepted = np.asarray(backend.accepted, dtype=float)
+                resume_state = backend.random_state
         except OSError as exc:
             raise CheckpointError(f"fit: cannot open the progress file {path}: {exc}") from exc
-    sampler = emcee.EnsembleSampler(n_walkers, n_dim, log_prob, backend=backend)
-    done = sampler.iteration
+    # Sampling runs in memory, chunk by chunk; each finished chunk is appended to the
+    # progress file in emcee's HDF5 backend layout (one file open per chunk, not per step).
+    sampler = emcee.EnsembleSampler(n_walkers, n_dim, log_prob)
+    resumed_from = stored_chain.shape[0]
     tau_history: list = []
-    if done > 0:
-        state = sampler.get_last_sample()
-        last_tau = _read_last_tau(progress_path)
+    if resumed_from > 0:
+        last_tau = _read_last_tau(path)
         if last_tau is not None:
             tau_history.append(last_tau)
-        note += f"resumed from step {done}. "
+        sampler.random_state = tuple(resume_state)
+        state = emcee.State(stored_chain[-1].copy(), log_prob=stored_lp[-1].copy(),
+                            random_state=sampler.random_state)
+        note += f"resumed from step {resumed_from}. "
     else:
         rng = np.random.default_rng(seed)
         scale = np.broadcast_to(np.asarray(init_scale, dtype=float), (n_dim,))
+        if not np.isfinite(log_prob(start)):
+            raise InputError("fit: the starting point has zero prior or likelihood; check "
+                             "the priors (alpha range, B range) and the data")
         coords = start + scale * rng.standard_normal((n_walkers, n_dim))
         for i in range(n_walkers):  # keep every walker inside the prior
             tries = 0
             while not np.isfinite(log_prob(coords[i])) and tries < 100:
                 coords[i] = start + 0.1 * scale * rng.standard_normal(n_dim)
                 tries += 1
-        if not np.isfinite(log_prob(start)):
-            raise InputError("fit: the starting point has zero prior or likelihood; check "
-                             "the priors (alpha range, B range) and the data")
         sampler.random_state = np.random.RandomState(seed).get_state()
         state = emcee.State(coords, random_state=sampler.random_state)
-    resumed_from = done
 
+    def full_chain() -> np.ndarray:
+        if sampler.iteration == 0:
+            return stored_chain
+        return np.concatenate([stored_chain, sampler.get_chain()])
+
+    done = resumed_from
     converged, tau = False, np.full(n_dim, np.inf)
     reason = ""
     bar = tqdm(total=max_steps, initial=min(done, max_steps), desc="fit: sampling",
@@ -200,11 +218,11 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
     try:
         while True:
             if done > 0 and (done % check_every == 0 or done >= max_steps):
-                tau = _autocorr(sampler.get_chain())
-                stable = bool(tau_history) and np.all(
-                    np.abs(tau - tau_history[-1]) < tau_tolerance * tau)
+                tau = _autocorr(full_chain())
+                stable = bool(tau_history) and bool(np.all(
+                    np.abs(tau - tau_history[-1]) < tau_tolerance * tau))
                 tau_history.append(tau.copy())
-                _write_last_tau(progress_path, tau)
+                _write_last_tau(path, tau)
                 if np.all(np.isfinite(tau)) and done > tau_factor * np.max(tau) and stable:
                     converged = True
                     reason = (f"converged after {done} steps ({done / np.max(tau):.0f} "
@@ -216,21 +234,48 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
                               "stable tau); raise fit.max_steps")
                     break
             n_next = min(check_every - done % check_every, max_steps - done)
+            accepted_before = np.array(sampler.backend.accepted, dtype=float) \
+                if sampler.iteration else np.zeros(n_walkers)
             for state in sampler.sample(state, iterations=n_next, store=True):
                 pass
+            if path is not None:
+                _append_chunk(path, sampler.get_chain()[-n_next:],
+                              sampler.get_log_prob()[-n_next:],
+                              np.asarray(sampler.backend.accepted, dtype=float)
+                              - accepted_before, sampler.random_state)
             bar.update(n_next)
-            done = sampler.iteration
+            done = resumed_from + sampler.iteration
     finally:
         bar.close()
-    chain = sampler.get_chain()
-    lp = sampler.get_log_prob()
+    chain = full_chain()
+    lp = stored_lp if sampler.iteration == 0 else np.concatenate([stored_lp,
+                                                                   sampler.get_log_prob()])
     finite_tau = tau if np.all(np.isfinite(tau)) else np.full(n_dim, chain.shape[0] / 10.0)
     burn = int(min(2 * np.max(finite_tau), chain.shape[0] // 2))
     thin = max(1, int(0.5 * np.min(finite_tau)))
-    accept = float(np.mean(sampler.acceptance_fraction))
+    accepted = stored_accepted + (np.asarray(sampler.backend.accepted, dtype=float)
+                                  if sampler.iteration else 0.0)
+    accept = float(np.mean(accepted) / max(chain.shape[0], 1))
     return ChainResult(chain=chain, log_prob=lp, tau=tau, converged=converged, burn=burn,
                        thin=thin, acceptance=accept, resumed_from=resumed_from,
                        note=(note + reason).strip(), tau_history=tau_history)
+
+
+def _append_chunk(path: Path, chain: np.ndarray, log_prob: np.ndarray, accepted: np.ndarray,
+                  random_state) -> None:
+    """Append finished steps in emcee's HDF5 layout: data first, the iteration counter last."""
+    with h5py.File(path, "a") as f:
+        g = f[CHAIN_GROUP]
+        it = int(g.attrs["iteration"])
+        n = chain.shape[0]
+        g["chain"].resize(it + n, axis=0)
+        g["log_prob"].resize(it + n, axis=0)
+        g["chain"][it:it + n] = chain
+        g["log_prob"][it:it + n] = log_prob
+        g["accepted"][:] += accepted
+        for i, v in enumerate(random_state):
+            g.attrs[f"random_state_{i}"] = v
+        g.attrs["iteration"] = it + n
 
 
 def _read_last_tau(path) -> np.ndarray | None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import emcee
 import h5py
 import numpy as np
 import pytest
@@ -54,8 +55,8 @@ class _Interrupt:
 
 
 def test_interrupted_chain_resumes_to_the_same_result(tmp_path):
-    # STYLE.md 14: interrupted and resumed equals uninterrupted (emcee's HDF5 backend stores
-    # each step and the generator state).
+    # STYLE.md 14: interrupted and resumed equals uninterrupted (the progress file, in emcee's
+    # HDF5 backend layout, holds every finished chunk of steps and the generator state).
     kw = dict(n_walkers=8, seed=5, max_steps=300, check_every=100, tau_factor=1e6,
               progress=False, model_hash="toy")
     full = run_chain(gauss, np.zeros(2), **kw)
@@ -64,7 +65,9 @@ def test_interrupted_chain_resumes_to_the_same_result(tmp_path):
         run_chain(_Interrupt(8 + 8 * 130 + 3), np.zeros(2), progress_path=path, **kw)
     with h5py.File(path, "r") as f:
         stopped_at = int(f[CHAIN_GROUP].attrs["iteration"])
-    assert 100 < stopped_at < 300
+    assert stopped_at == 100  # the last finished chunk (check_every = 100)
+    stored = emcee.backends.HDFBackend(str(path), name=CHAIN_GROUP, read_only=True)
+    np.testing.assert_array_equal(stored.get_chain(), full.chain[:100])  # emcee reads it
     resumed = run_chain(gauss, np.zeros(2), progress_path=path, **kw)
     assert resumed.resumed_from == stopped_at
     np.testing.assert_array_equal(resumed.chain, full.chain)
