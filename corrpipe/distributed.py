@@ -102,6 +102,10 @@ class EngineSettings:
     worker_timeout: float = setting(120.0, "seconds to wait for the first worker to join "
                                     "before giving up with an error (batch jobs may queue)",
                                     unit="s", low=1.0, high=86400.0)
+    work_units: int = setting(0, "target number of pair-count work units a count is cut into "
+                              "(the same on both engines); 0 = the pair counter's default. "
+                              "Give a cluster several units per worker thread", low=0,
+                              high=10_000_000)
     units_per_task: int = setting(0, "pair-count work units per task, and per batch of the "
                                   "threads engine; 0 = 4 per worker thread (equal values give "
                                   "bitwise equal counts on both engines)", low=0, high=100000)
@@ -216,7 +220,7 @@ def _start_cluster(distributed, settings: EngineSettings):
     env = {"NUMBA_NUM_THREADS": str(threads), "OMP_NUM_THREADS": str(threads)}
     if settings.cluster == "local":
         options = dict(n_workers=n_workers, threads_per_worker=1, processes=True,
-                       dashboard_address=None, env=env)
+                       dashboard_address=":0", env=env)
         if settings.memory_per_worker:
             options["memory_limit"] = settings.memory_per_worker
         try:
@@ -320,7 +324,8 @@ def count_pairs_on(settings: EngineSettings, positions1, weights1=None, position
     Parameters
     ----------
     settings : EngineSettings
-        Engine choice; ``units_per_task`` sets the grouping of work units on both engines.
+        Engine choice; ``work_units`` (the plan) and ``units_per_task`` (the grouping of units)
+        apply to both engines, so equal settings give bitwise equal counts.
     positions1, weights1, positions2, weights2, binning, los, box_size, regions1, regions2, \
 n_regions, raw, progress, progress_path
         As in :func:`corrpipe.paircount.count_pairs`: positions (N, 3) in Mpc/h, box_size in
@@ -358,6 +363,8 @@ n_regions, raw, progress, progress_path
     """
     count_args = dict(binning=binning, los=los, box_size=box_size, regions1=regions1,
                       regions2=regions2, n_regions=n_regions, raw=raw)
+    if settings.work_units > 0:
+        count_args["n_units"] = settings.work_units
     if settings.kind == "threads":
         threads = numba.config.NUMBA_NUM_THREADS if n_threads is None else int(n_threads)
         return count_pairs(positions1, weights1, positions2, weights2, **count_args,

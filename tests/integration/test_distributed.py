@@ -6,6 +6,7 @@ scipy.spatial.cKDTree.count_neighbors (scipy reference) for independent raw pair
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import os
 import signal
@@ -106,10 +107,12 @@ def test_periodic_cross_count_identical_and_matches_kdtree(engine):
     b = rng.uniform(0, box, (5000, 3))
     binning = Binning.linear(0.0, 40.0, 8)
     kwargs = dict(binning=binning, box_size=box, los="z", raw=True)
-    local = count_pairs_on(EngineSettings(units_per_task=UNITS_PER_TASK), a, None, b, None,
-                           **kwargs)
-    remote = count_pairs_on(settings, a, None, b, None, client=client, **kwargs)
+    plan = dict(work_units=40, units_per_task=3)
+    local = count_pairs_on(EngineSettings(kind="threads", **plan), a, None, b, None, **kwargs)
+    remote = count_pairs_on(dataclasses.replace(settings, **plan), a, None, b, None,
+                            client=client, **kwargs)
     _assert_identical(remote, local)
+    assert 10 < remote.meta["n_units"] <= 40
     tree_a, tree_b = cKDTree(a, boxsize=box), cKDTree(b, boxsize=box)
     cumulative = tree_a.count_neighbors(tree_b, binning.edges[0], cumulative=True)
     # corrpipe bins s^2 < edge^2, cKDTree counts s <= edge: equal for continuous random points
@@ -238,6 +241,18 @@ def test_engine_table_validation():
     with pytest.raises(ConfigError, match="both 'scheduler' and 'scheduler_file'"):
         validate_section(EngineSettings, {"scheduler": "tcp://a:1", "scheduler_file": "s.json"},
                          "engine", "run.toml", Path("."))
+    with pytest.raises(ConfigError, match="units_per_task"):
+        validate_section(EngineSettings, {"units_per_task": -1}, "engine", "run.toml", Path("."))
     with pytest.raises(ConfigError, match="connect_timeout"):
         validate_section(EngineSettings, {"connect_timeout": 0.0}, "engine", "run.toml",
                          Path("."))
+
+
+def test_slurm_example_config_engine_table_is_valid():
+    # common practice: a shipped example must at least pass the config checks
+    from corrpipe.config import tomllib
+
+    path = Path(__file__).resolve().parents[2] / "configs" / "cluster_slurm.toml"
+    table = tomllib.loads(path.read_text())["engine"]
+    engine = validate_section(EngineSettings, table, "engine", str(path), path.parent)
+    assert (engine.kind, engine.cluster, engine.n_workers) == ("dask", "slurm", 16)
