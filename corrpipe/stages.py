@@ -92,7 +92,8 @@ def stage_section_classes() -> dict[str, type]:
     from corrpipe.fit import FitSettings
     from corrpipe.footprint import FootprintSettings
     from corrpipe.randoms import RandomsSettings
-    from corrpipe.regions import RegionSettings
+    from corrpipe.distributed import EngineSettings
+    from corrpipe.recon import ReconSettings
     from corrpipe.weights import WeightsSettings
 
     return {
@@ -101,8 +102,9 @@ def stage_section_classes() -> dict[str, type]:
         "footprint": FootprintSettings,
         "randoms": RandomsSettings,
         "weights": WeightsSettings,
-        "regions": RegionSettings,
+        "reconstruct": ReconSettings,
         "counts": CountSettings,
+        "engine": EngineSettings,
         "estimate": EstimateSettings,
         "covariance": CovarianceSettings,
         "fit": FitSettings,
@@ -188,7 +190,7 @@ def _box_uses_randoms(a) -> bool:
 
 def _randoms(ctx: StageContext):
     """Randoms, n(z), FKP weights and jackknife regions (``[footprint]``, ``[randoms]``,
-    ``[weights]``, ``[regions]``)."""
+    ``[weights]`` and the region keys of ``[covariance]``)."""
     from corrpipe import randoms as rnd
     from corrpipe import regions as reg
     from corrpipe.catalog import load_sky_catalogue
@@ -210,7 +212,7 @@ def _randoms(ctx: StageContext):
             rpos = rnd.box_randoms(n_r, L, seed)
             rw = np.ones(n_r)
             subset = np.arange(n_r, dtype=np.int64) % a.randoms.n_sets
-            n_side = a.regions.cubes_per_side
+            n_side = a.covariance.cubes_per_side
             d_reg = reg.cube_regions(data.positions, L, n_side)
             r_reg = reg.cube_regions(rpos, L, n_side)
             reg.check_regions(n_side**3, data=d_reg, randoms=r_reg)
@@ -260,16 +262,16 @@ def _randoms(ctx: StageContext):
             dw = data.weights
         rpos = sky_to_cartesian(ra_r, dec_r, z_r, cosmo)
         # jackknife regions from the randoms
-        scheme = a.regions.regions
+        scheme = a.covariance.regions
         if scheme == "cubes":
-            raise ConfigError("[regions] regions = 'cubes' is for periodic boxes; use 'kmeans' "
+            raise ConfigError("[covariance] regions = 'cubes' is for periodic boxes; use 'kmeans' "
                               "or 'healpix' for a survey")
         if scheme == "kmeans":
-            regions = reg.kmeans_regions(ra_r, dec_r, a.regions.n_regions, seed,
-                                         n_sample=a.regions.kmeans_sample)
+            regions = reg.kmeans_regions(ra_r, dec_r, a.covariance.n_regions, ctx.seed("regions"),
+                                         n_sample=a.covariance.kmeans_sample)
         else:
-            regions = reg.healpix_regions(ra_r, dec_r, a.regions.n_regions,
-                                          nside=a.regions.region_nside)
+            regions = reg.healpix_regions(ra_r, dec_r, a.covariance.n_regions,
+                                          nside=a.covariance.region_nside)
         d_reg = regions.assign(data.ra, data.dec)
         r_reg = regions.assign(ra_r, dec_r)
         n_regions = regions.n_regions
@@ -298,6 +300,15 @@ def _randoms(ctx: StageContext):
     return fill
 
 
+def _region_keys(a) -> dict:
+    """The jackknife-region keys of ``[covariance]`` (the randoms stage assigns regions)."""
+    from corrpipe.regions import RegionSettings
+    import dataclasses
+
+    return {f"covariance.{f.name}": getattr(a.covariance, f.name)
+            for f in dataclasses.fields(RegionSettings)}
+
+
 def _coverage_area(ra, dec, nside: int) -> float:
     from corrpipe.footprint import footprint_from_data
 
@@ -323,25 +334,45 @@ def _los(a, box_axis) -> str:
 
 
 class _Counter:
-    """Runs the pair counts of the counts stage on the configured engine, one sidecar each."""
+    """Runs the pair counts of the counts stage on the configured engine, one sidecar each.
+
+    Used as a context manager so that a Dask cluster (``[engine] kind = "dask"``) is opened
+    once for all the counts of the stage.
+    """
 
     def __init__(self, ctx: StageContext, box_size, los: str, n_regions: int):
         self.ctx, self.box_size, self.los, self.n_regions = ctx, box_size, los, n_regions
         self.threads = ctx.config.run.threads or None
+        self.engine = ctx.analysis.engine
+        self._stack = None
+        self.client = None
+
+    def __enter__(self) -> "_Counter":
+        import contextlib
+
+        self._stack = contextlib.ExitStack()
+        if self.engine.kind != "threads":
+            from corrpipe.distributed import open_engine
+
+            self.client = self._stack.enter_context(open_engine(self.engine))
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stack.close()
 
     def __call__(self, label: str, binning, pos1, w1, reg1, pos2=None, w2=None, reg2=None):
-        from corrpipe.paircount import count_pairs
+        from corrpipe.distributed import count_pairs_on
 
         log.info("[%s] counts: %s (%d x %s objects)", self.ctx.analysis.name, label, len(w1),
                  "self" if pos2 is None else len(w2))
         regions = self.n_regions > 0
-        return count_pairs(pos1, w1, pos2, w2, binning=binning, los=self.los,
-                           box_size=self.box_size, regions1=reg1 if regions else None,
-                           regions2=reg2 if regions and pos2 is not None else None,
-                           n_regions=self.n_regions if regions else None,
-                           raw=self.ctx.analysis.counts.raw_counts, n_threads=self.threads,
-                           progress=self.ctx.show_progress,
-                           progress_path=self.ctx.sidecar(label))
+        return count_pairs_on(self.engine, pos1, w1, pos2, w2, binning=binning, los=self.los,
+                              box_size=self.box_size, regions1=reg1 if regions else None,
+                              regions2=reg2 if regions and pos2 is not None else None,
+                              n_regions=self.n_regions if regions else None,
+                              raw=self.ctx.analysis.counts.raw_counts, n_threads=self.threads,
+                              progress=self.ctx.show_progress,
+                              progress_path=self.ctx.sidecar(label), client=self.client)
 
 
 def _sum_split(parts: list):
@@ -369,48 +400,74 @@ def _sum_split(parts: list):
                    meta={**first.meta, "rr_splits": len(parts)})
 
 
-def _counts(ctx: StageContext):
-    """DD, DR and RR (split over random sets; analytic for a box) in (s, mu) [and (r_p, pi)]."""
+def _read_inputs_for_counts(ctx: StageContext) -> dict:
+    """Positions, weights and region labels of D, R (and S, shifted D) for the counts stage."""
     a = ctx.analysis
     with ctx.read("load") as h5:
         data = read_catalogue(h5["data"])
+    out: dict[str, Any] = {"box_size": data.box_size, "los_axis": data.los_axis}
     with ctx.read("randoms") as h5:
-        dw = h5["data/weights"][()]
-        d_reg = h5["data/regions"][()] if "data/regions" in h5 else None
-        has_randoms = "randoms" in h5
-        if has_randoms:
-            rpos = h5["randoms/positions"][()]
-            rw = h5["randoms/weights"][()]
-            r_reg = h5["randoms/regions"][()] if "randoms/regions" in h5 else None
-            subset = h5["randoms/subset"][()]
-        n_regions = int(h5.attrs["n_regions"])
-    counter = _Counter(ctx, data.box_size, _los(a, data.los_axis), n_regions)
-    results: dict[str, dict[str, Any]] = {}
-    for mode, binning in _binnings(a).items():
-        res = {"DD": counter(f"{mode}-DD", binning, data.positions, dw, d_reg)}
-        if has_randoms:
-            res["DR"] = counter(f"{mode}-DR", binning, data.positions, dw, d_reg, rpos, rw, r_reg)
-            n_sets = int(subset.max()) + 1
-            parts = []
-            for k in range(n_sets):
-                sel = subset == k
-                parts.append(counter(f"{mode}-RR{k}", binning, rpos[sel], rw[sel],
-                                     None if r_reg is None else r_reg[sel]))
-            res["RR"] = parts[0] if n_sets == 1 else _sum_split(parts)
-        else:
-            from corrpipe.paircount import analytic_box_rr
+        out["D"] = (data.positions, h5["data/weights"][()],
+                    h5["data/regions"][()] if "data/regions" in h5 else None)
+        out["n_regions"] = int(h5.attrs["n_regions"])
+        if "randoms" in h5:
+            r = h5["randoms"]
+            out["R"] = (r["positions"][()], r["weights"][()],
+                        r["regions"][()] if "regions" in r else None)
+            out["subset"] = r["subset"][()]
+    if a.reconstruct.enabled:
+        from corrpipe.recon import ReconResult
 
-            res["RR"] = analytic_box_rr(binning, float(data.box_size), float(dw.sum()),
-                                        float(np.sum(dw**2)), int(dw.size))
-        results[mode] = res
+        with ctx.read("reconstruct") as h5:
+            rec = ReconResult.from_hdf5(h5["reconstruction"])
+            s_reg = h5["shifted_random_regions"][()] if "shifted_random_regions" in h5 else None
+        out["D"] = (rec.data_positions, rec.data_weights, out["D"][2])
+        out["S"] = (rec.random_positions, rec.random_weights, s_reg)
+    return out
+
+
+def _counts(ctx: StageContext):
+    """DD, DR and RR (split over random sets; analytic for a box) in (s, mu) [and (r_p, pi)];
+    after reconstruction DD, DS, SS on the shifted catalogues and RR on the unshifted randoms."""
+    a = ctx.analysis
+    inp = _read_inputs_for_counts(ctx)
+    box_size, n_regions = inp["box_size"], inp["n_regions"]
+    results: dict[str, dict[str, Any]] = {}
+    with _Counter(ctx, box_size, _los(a, inp["los_axis"]), n_regions) as counter:
+        for mode, binning in _binnings(a).items():
+            res = {"DD": counter(f"{mode}-DD", binning, *inp["D"])}
+            if "S" in inp:
+                res["DS"] = counter(f"{mode}-DS", binning, *inp["D"], *inp["S"])
+                res["SS"] = counter(f"{mode}-SS", binning, *inp["S"])
+            elif "R" in inp:
+                res["DR"] = counter(f"{mode}-DR", binning, *inp["D"], *inp["R"])
+            if "R" in inp:
+                rpos, rw, r_reg = inp["R"]
+                subset = inp["subset"]
+                n_sets = int(subset.max()) + 1
+                parts = []
+                for k in range(n_sets):
+                    sel = subset == k
+                    parts.append(counter(f"{mode}-RR{k}", binning, rpos[sel], rw[sel],
+                                         None if r_reg is None else r_reg[sel]))
+                res["RR"] = parts[0] if n_sets == 1 else _sum_split(parts)
+            else:
+                from corrpipe.paircount import analytic_box_rr
+
+                w = inp["D"][1]
+                res["RR"] = analytic_box_rr(binning, float(box_size), n=int(w.size),
+                                            sum_w=float(w.sum()), sum_w_sq=float(np.sum(w**2)))
+            results[mode] = res
+        los = counter.los
 
     def fill(h5: h5py.File) -> None:
         for mode, res in results.items():
             g = h5.create_group(mode)
             for name, pc in res.items():
                 pc.to_hdf5(g.create_group(name))
-        h5.attrs["line_of_sight"] = counter.los
+        h5.attrs["line_of_sight"] = los
         h5.attrs["n_regions"] = n_regions
+        h5.attrs["reconstructed"] = bool(a.reconstruct.enabled)
 
     return fill
 
@@ -422,12 +479,328 @@ def read_counts(h5: h5py.File, mode: str = "smu") -> dict:
     return {name: PairCounts.from_hdf5(g) for name, g in h5[mode].items()}
 
 
+def _reconstruct(ctx: StageContext):
+    """Shift data and randoms by the Zel'dovich displacement (``[reconstruct]``)."""
+    from corrpipe import recon
+    from corrpipe.regions import cube_regions
+
+    a = ctx.analysis
+    rs = a.reconstruct
+    with ctx.read("load") as h5:
+        data = read_catalogue(h5["data"])
+    with ctx.read("randoms") as h5:
+        dw = h5["data/weights"][()]
+        z_eff = float(h5.attrs["z_eff"])
+        has_r = "randoms" in h5
+        if has_r:
+            rpos, rw = h5["randoms/positions"][()], h5["randoms/weights"][()]
+            r_reg = h5["randoms/regions"][()] if "randoms/regions" in h5 else None
+        n_regions = int(h5.attrs["n_regions"])
+    f = recon.resolve_growth_rate(rs, _cosmology(a), z_eff)
+    workers = ctx.config.run.threads or None
+    s_reg = None
+    if data.is_box:
+        result = recon.reconstruct_box(data.positions, dw, float(data.box_size),
+                                       los_axis=data.los_axis, growth_rate=f, bias=rs.bias,
+                                       settings=rs, seed=ctx.seed("shifted-randoms"),
+                                       progress=ctx.show_progress, workers=workers)
+        if n_regions:
+            s_reg = cube_regions(result.random_positions, float(data.box_size),
+                                 a.covariance.cubes_per_side)
+    else:
+        if not has_r:
+            raise StageError("reconstruction of a survey needs randoms; the randoms stage "
+                             "stored none")
+        result = recon.reconstruct_survey(data.positions, dw, rpos, rw, growth_rate=f,
+                                          bias=rs.bias, settings=rs,
+                                          progress=ctx.show_progress, workers=workers)
+        s_reg = r_reg  # shifted randoms keep the labels of the randoms they came from
+    log.info("[%s] reconstruct: f = %.3f, b = %.2f, %d iteration(s), residual %.2e",
+             a.name, f, rs.bias, result.iterations, result.residual)
+
+    def fill(h5: h5py.File) -> None:
+        result.to_hdf5(h5.create_group("reconstruction"))
+        if s_reg is not None:
+            h5.create_dataset("shifted_random_regions", data=s_reg)
+        h5.attrs["growth_rate"] = f
+
+    return fill
+
+
+def _estimate(ctx: StageContext):
+    """xi(s, mu), multipoles, wedges [and w_p] from the stored counts (``[estimate]``)."""
+    from corrpipe.estimators import estimate_from_counts
+
+    a = ctx.analysis
+    with ctx.read("counts") as h5:
+        smu = read_counts(h5, "smu")
+        rppi = read_counts(h5, "rppi") if "rppi" in h5 else None
+    with ctx.read("randoms") as h5:
+        z_eff = float(h5.attrs["z_eff"])
+    est = estimate_from_counts(smu, a.estimate, rppi)
+
+    def fill(h5: h5py.File) -> None:
+        est.to_hdf5_group(h5.create_group("estimate"))
+        h5.attrs["z_eff"] = z_eff
+
+    return fill
+
+
+def _mock_vectors(ctx: StageContext, files: list[str]) -> np.ndarray:
+    """Multipole vectors of mock catalogues through the same counts as the data.
+
+    Each mock is loaded with the data's ``[catalogue]`` settings (only the path differs), gets
+    the data's FKP weighting (n(z) of the data), and is counted against the data's randoms;
+    the RR counts are shared (common practice when the mocks follow the data's footprint and
+    n(z)).
+    """
+    import dataclasses
+
+    from corrpipe.catalog import load_catalogue
+    from corrpipe.estimators import estimate_from_counts
+    from corrpipe.weights import RedshiftDensity, combine_fkp
+
+    a = ctx.analysis
+    cosmo = _cosmology(a)
+    with ctx.read("counts") as h5:
+        rr = read_counts(h5, "smu")["RR"]
+    with ctx.read("randoms") as h5:
+        has_r = "randoms" in h5
+        if has_r:
+            rpos, rw = h5["randoms/positions"][()], h5["randoms/weights"][()]
+        nz = RedshiftDensity.from_hdf5_group(h5["nz"]) if "nz" in h5 else None
+    binning = _binnings(a)["smu"]
+    vectors = []
+    with _Counter(ctx, None, a.counts.line_of_sight, 0) as counter:
+        for i, path in enumerate(files):
+            mock = load_catalogue(dataclasses.replace(a.catalogue, path=path), cosmo)
+            w = mock.weights
+            if nz is not None and a.weights.fkp:
+                w = combine_fkp(w, mock.z, nz, a.weights.fkp_p0, a.weights.nz_interpolation)
+            counter.box_size = mock.box_size
+            counter.los = _los(a, mock.los_axis)
+            counts = {"DD": counter(f"mock{i}-DD", binning, mock.positions, w, None),
+                      "RR": rr}
+            if has_r:
+                counts["DR"] = counter(f"mock{i}-DR", binning, mock.positions, w, None,
+                                       rpos, rw, None)
+            elif mock.box_size is not None:
+                from corrpipe.paircount import analytic_box_rr
+
+                counts["RR"] = analytic_box_rr(binning, float(mock.box_size), n=int(w.size),
+                                               sum_w=float(w.sum()),
+                                               sum_w_sq=float(np.sum(w**2)))
+            vectors.append(estimate_from_counts(counts, a.estimate).vector("multipoles"))
+    return np.array(vectors)
+
+
+def _covariance(ctx: StageContext):
+    """Covariance of the multipole vector: jackknife, mocks or Gaussian analytic
+    (``[covariance]``). The full vector is stored; the fit selects its range from it."""
+    from corrpipe import covariance as cv
+
+    a = ctx.analysis
+    c = a.covariance
+    samples = None
+    if c.kind == "jackknife":
+        with ctx.read("counts") as h5:
+            smu = read_counts(h5, "smu")
+        if smu["DD"].n_regions < 2:
+            raise StageError("covariance.kind = 'jackknife' needs jackknife regions in the "
+                             "counts; for a periodic box set [counts] box_rr = 'randoms'")
+        weight = cv._cross_weight(c.jackknife_weighting, c.cross_weight, smu["DD"].n_regions)
+        from corrpipe.estimators import estimate_from_counts
+        from tqdm.auto import tqdm
+
+        rows = []
+        for k in tqdm(range(smu["DD"].n_regions), desc="jackknife",
+                      disable=not ctx.show_progress):
+            rows.append(estimate_from_counts(smu, a.estimate, delete_region=k,
+                                             cross_weight=weight).vector("multipoles"))
+        samples = np.array(rows)
+        result = cv.jackknife_covariance(samples, weight)
+    elif c.kind == "mocks":
+        files = cv.expand_mock_paths(c.mocks)
+        samples = _mock_vectors(ctx, files)
+        result = cv.mock_covariance(samples)
+    else:
+        result = _analytic_covariance(ctx)
+    log.info("[%s] covariance: %s from %d samples, %d bins", a.name, result.kind,
+             result.n_samples, result.n_bins)
+
+    def fill(h5: h5py.File) -> None:
+        result.to_hdf5_group(h5.create_group("covariance"))
+        if samples is not None:
+            h5.create_dataset("samples", data=samples)
+
+    return fill
+
+
+def _analytic_covariance(ctx: StageContext):
+    from corrpipe import covariance as cv
+    from corrpipe.fit.run import build_linear_power
+
+    a = ctx.analysis
+    c = a.covariance
+    with ctx.read("load") as h5:
+        data = read_catalogue(h5["data"])
+    if not data.is_box:
+        raise StageError("covariance.kind = 'analytic' is the Gaussian covariance of a periodic "
+                         "box; for a survey use 'jackknife' or 'mocks'")
+    with ctx.read("estimate") as h5:
+        s_edges = h5["estimate/s_edges"][()]
+    if c.pk_file:
+        table = np.loadtxt(c.pk_file)
+        pk = (table[:, 0], table[:, 1])
+    else:
+        # galaxy power: linear matter power times b^2 with b from the fit's B prior centre
+        lp = build_linear_power(_cosmology(a), float(a.catalogue.box_redshift), a.fit)
+        pk = lp.wiggle
+    nbar = float(data.size) / float(data.box_size) ** 3
+    return cv.gaussian_box_covariance(pk, nbar, float(data.box_size) ** 3, s_edges,
+                                      a.estimate.ells, beta=c.beta, k_max=c.k_max)
+
+
+def _fit_inputs(a, est, cov, fit, n_params: int) -> dict:
+    """Data vector, covariance and the Hartlap/Percival factors for the fit's bins.
+
+    ``n_params`` counts every fitted parameter (sampled and broadband) for the Percival et
+    al. (2014) factor m1; the Hartlap et al. (2007) factor uses the number of fitted bins.
+    """
+    from corrpipe.covariance import hartlap_factor, percival_factors
+
+    s = est.s
+    in_range = (s >= fit.s_min) & (s <= fit.s_max)
+    n_fit_bins = int(in_range.sum()) * len(fit.fit_ells)
+    if cov.kind == "analytic":
+        hartlap, m1 = 1.0, 1.0
+    else:
+        if cov.n_samples - 2 <= n_fit_bins:
+            raise StageError(
+                f"the {cov.kind} covariance has {cov.n_samples} samples but the fit uses "
+                f"{n_fit_bins} bins ({len(fit.fit_ells)} multipoles x {int(in_range.sum())} s "
+                f"bins); use more {'regions ([covariance] n_regions)' if cov.kind == 'jackknife' else 'mocks'}"
+                f" than bins + 2, or fewer bins ([estimate] s_merge, a narrower fit range)")
+        hartlap = hartlap_factor(cov.n_samples, n_fit_bins)
+        m1, _ = percival_factors(cov.n_samples, n_fit_bins, n_params)
+    return dict(s=s, data_vector=est.vector("multipoles"), covariance=cov.matrix,
+                ells=est.ells, precision_factor=hartlap, variance_factor=m1)
+
+
+def _fit(ctx: StageContext):
+    """BAO template fit by MCMC (``[fit]``; template at the ``[cosmology]`` fiducial)."""
+    import dataclasses
+
+    from corrpipe.covariance import CovarianceResult
+    from corrpipe.estimators import Estimate
+    from corrpipe.fit import build_likelihood, fit_multipoles
+
+    a = ctx.analysis
+    with ctx.read("estimate") as h5:
+        est = Estimate.from_hdf5_group(h5["estimate"])
+        z_eff = float(h5.attrs["z_eff"])
+    with ctx.read("covariance") as h5:
+        cov = CovarianceResult.from_hdf5_group(h5["covariance"])
+    settings = a.fit
+    if a.reconstruct.enabled and not settings.reconstructed:
+        settings = dataclasses.replace(settings, reconstructed=True,
+                                       recon_convention=a.reconstruct.convention,
+                                       smoothing_radius=a.reconstruct.smoothing)
+    cosmo = _cosmology(a)
+    like = build_likelihood(est.s, est.vector("multipoles"), cov.matrix, est.ells,
+                            cosmology=cosmo, z_eff=z_eff, settings=settings)
+    inputs = _fit_inputs(a, est, cov, settings, like.n_dim + like.n_broadband)
+    result = fit_multipoles(cosmology=cosmo, z_eff=z_eff, settings=settings,
+                            linear_power=like.template.linear_power,
+                            progress_path=ctx.progress_path, progress=ctx.show_progress,
+                            seed=ctx.seed("mcmc") % (2**32), covariance_type=cov.kind,
+                            name=a.name, **inputs)
+
+    def fill(h5: h5py.File) -> None:
+        result.to_hdf5(h5.create_group("fit"))
+
+    return fill
+
+
+def _report(ctx: StageContext):
+    """summary.json, summary.txt and plots of one analysis (``[report]``)."""
+    from corrpipe.checkpoint import write_json_atomic
+    from corrpipe.fit import FitResult
+
+    a = ctx.analysis
+    with ctx.read("fit") as h5:
+        result = FitResult.from_hdf5(h5["fit"])
+    with ctx.read("randoms") as h5:
+        geometry = {k: (v.item() if hasattr(v, "item") else v) for k, v in h5.attrs.items()
+                    if k in ("n_data", "n_randoms", "area_deg2", "outside_fraction", "kind",
+                             "n_regions", "box_size")}
+    summary = result.to_dict()
+    summary["sample"] = geometry
+    summary["config"] = str(ctx.config.path) if ctx.config.path else ""
+    write_json_atomic(ctx.folder / "summary.json", summary)
+    text = result.text_summary()
+    _write_text_atomic(ctx.folder / "summary.txt", text + "\n")
+    plots = []
+    if a.report.plots:
+        plots = _write_plots(ctx, result)
+
+    def fill(h5: h5py.File) -> None:
+        h5.attrs["summary_json"] = json.dumps(summary, default=str)
+        h5.attrs["plots"] = json.dumps([str(p) for p in plots])
+
+    return fill
+
+
+def _write_text_atomic(path, text: str) -> None:
+    import os
+
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    tmp.write_text(text)
+    os.replace(tmp, path)
+
+
+def _write_plots(ctx: StageContext, result) -> list:
+    import os
+
+    from corrpipe.fit.plots import plot_multipoles, plot_posterior
+
+    folder = ctx.folder / "report"
+    folder.mkdir(exist_ok=True)
+    written = []
+    for name, make in (("multipoles.png", plot_multipoles), ("posterior.png", plot_posterior)):
+        fig = make(result)
+        path = folder / name
+        tmp = folder / f".{name}.tmp-{os.getpid()}.png"
+        fig.savefig(tmp, dpi=ctx.analysis.report.dpi, bbox_inches="tight")
+        os.replace(tmp, path)
+        written.append(path)
+    return written
+
+
 STAGES: tuple[Stage, ...] = (
     Stage("load", ("catalogue", "cosmology"), (), _load,
           inputs=lambda a: [a.catalogue.path]),
-    Stage("randoms", ("footprint", "randoms", "weights", "regions"), ("load",), _randoms,
+    Stage("randoms", ("footprint", "randoms", "weights"), ("load",), _randoms,
           inputs=lambda a: [a.randoms.file] if a.randoms.file else [],
-          extra=lambda a: {"counts.box_rr": a.counts.box_rr}),
-    Stage("counts", ("counts",), ("load", "randoms"), _counts,
-          extra=lambda a: {}),
+          extra=lambda a: {"counts.box_rr": a.counts.box_rr, **_region_keys(a)}),
+    Stage("reconstruct", ("reconstruct",), ("load", "randoms"), _reconstruct,
+          enabled=lambda a: a.reconstruct.enabled,
+          extra=lambda a: {"covariance.cubes_per_side": a.covariance.cubes_per_side}),
+    Stage("counts", ("counts",), ("load", "randoms", "reconstruct"), _counts),
+    Stage("estimate", ("estimate",), ("counts", "randoms"), _estimate),
+    Stage("covariance", ("covariance",), ("load", "randoms", "counts", "estimate"), _covariance,
+          extra=lambda a: {"fit-template-for-analytic": a.section_dict("fit")
+                           if a.covariance.kind == "analytic" else None},
+          inputs=lambda a: _mock_inputs(a)),
+    Stage("fit", ("fit", "cosmology"), ("estimate", "covariance", "reconstruct"), _fit,
+          extra=lambda a: {"reconstruct.enabled": a.reconstruct.enabled}),
+    Stage("report", ("report",), ("fit", "randoms"), _report),
 )
+
+
+def _mock_inputs(a) -> list:
+    if a.covariance.kind != "mocks":
+        return []
+    from corrpipe.covariance import expand_mock_paths
+
+    return expand_mock_paths(a.covariance.mocks)
