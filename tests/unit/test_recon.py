@@ -382,3 +382,20 @@ def test_vector_read_out_kernel_matches_mesh_interpolate(scheme):
     want = np.stack([mesh.interpolate(psi[a], pos, 80.0, scheme, np.array(geometry.origin))
                      for a in range(3)], axis=1)
     np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12)
+
+
+def test_single_precision_meshes_agree_with_double():
+    # common practice: float32 meshes change the displacement only at the ~1e-6 relative
+    # level of single-precision FFTs (plus the iteration tolerance).
+    rng = np.random.default_rng(13)
+    dirn = np.array([0.6, 0.0, 0.8])
+    rand = _uniform_sphere_shell(rng, 20000, 300, 500, dirn)
+    data = _uniform_sphere_shell(rng, 5000, 300, 500, dirn)
+    out = {}
+    for precision in ("double", "single"):
+        settings = _settings(n_mesh=48, smoothing=15.0, padding=60.0, tolerance=1e-5,
+                             precision=precision)
+        out[precision] = recon.reconstruct_survey(data, None, rand, None, growth_rate=0.7,
+                                                  bias=2.0, settings=settings)
+    d, s = out["double"].data_displacement, out["single"].data_displacement
+    assert np.abs(d - s).max() < 1e-4 * np.abs(d).max()
