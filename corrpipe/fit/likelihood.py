@@ -15,7 +15,7 @@ import numpy as np
 from corrpipe.errors import InputError
 from corrpipe.fit.settings import FitSettings
 from corrpipe.theory.kernels import dilated_projection
-from corrpipe.theory.template import BAOTemplate, multipole_weights
+from corrpipe.theory.template import BAOTemplate, multipole_weights, wedge_weights
 
 __all__ = ["Likelihood", "Parameter", "PHYSICAL_NAMES", "check_covariance"]
 
@@ -95,6 +95,9 @@ class Likelihood:
     precision_factor : float
         Factor applied to the inverse covariance (Hartlap et al. 2007 for mock covariances;
         1 if the covariance stage already corrected it).
+    wedges : sequence of float, optional
+        Wedge edges in mu; the data vector then holds one block per wedge (all fitted) and
+        ``ells`` is ignored.
 
     Notes
     -----
@@ -107,12 +110,15 @@ class Likelihood:
 
     def __init__(self, data_s, data_vector, covariance, ells: Sequence[int],
                  template: BAOTemplate, settings: FitSettings = FitSettings(), *,
-                 precision_factor: float = 1.0) -> None:
+                 precision_factor: float = 1.0, wedges: Sequence[float] | None = None) -> None:
         self.settings = settings
         self.template = template
         s = np.asarray(data_s, dtype=float)
         d = np.asarray(data_vector, dtype=float)
         cov = np.asarray(covariance, dtype=float)
+        if wedges is not None:
+            n_blocks = len(wedges) - 1
+            ells = tuple(range(n_blocks))  # block labels
         ells = tuple(int(e) for e in ells)
         n_s = s.size
         if s.ndim != 1 or n_s < 2 or not np.all(np.isfinite(s)) or np.any(np.diff(s) <= 0):
@@ -127,7 +133,7 @@ class Likelihood:
         if cov.shape != (d.size, d.size):
             raise InputError(f"fit: covariance has shape {cov.shape}; expected "
                              f"({d.size}, {d.size}) to match the data vector")
-        fit_ells = settings.fit_ells
+        fit_ells = settings.fit_ells if wedges is None else ells
         missing = [e for e in fit_ells if e not in ells]
         if missing:
             raise InputError(f"fit: multipoles {missing} are requested (fit.ells) but the data "
@@ -170,7 +176,11 @@ class Likelihood:
             np.zeros((0, self.data.size))
         Q = self.precision - self.precision @ A @ self._bb_solve if n_bb else self.precision
         self._Q = np.ascontiguousarray(0.5 * (Q + Q.T))
-        self._mu, self._weights = multipole_weights(fit_ells, settings.n_mu)
+        if wedges is None:
+            self._mu, self._weights = multipole_weights(fit_ells, settings.n_mu)
+        else:
+            self._mu, self._weights = wedge_weights(wedges, max(4, settings.n_mu // 2))
+        self.wedges = None if wedges is None else tuple(float(w) for w in wedges)
         self._out = np.empty((n_ell, n_fit_s))
         self.n_data = self.data.size
         self.n_broadband = n_ell * n_bb

@@ -254,7 +254,13 @@ def fit_multipoles(s, data_vector, covariance, ells: Sequence[int], *, cosmology
 def summarise(like: Likelihood, chain, ml: np.ndarray, profile: dict | None, *,
               cosmology: Any, z_eff: float, covariance_type: str, variance_factor: float,
               name: str) -> FitResult:
-    """Posterior summaries, derived dilations and distances (errors scaled by sqrt(m1))."""
+    """Posterior summaries, derived dilations and distances (errors scaled by sqrt(m1)).
+
+    Distances: D_M/r_d = alpha_perp (D_M/r_d)_fid, D_H/r_d = alpha_par (D_H/r_d)_fid,
+    D_V/r_d = alpha_par^(1/3) alpha_perp^(2/3) (D_V/r_d)_fid (REFERENCES §7), per chain
+    sample (no linearisation), where the fiducial r_d is the template's sound horizon (the
+    scale its wiggles sit at; EH98 eq. 6 for an EH98 template).
+    """
     st = like.settings
     samples = chain.samples()
     scale = float(np.sqrt(variance_factor))
@@ -264,8 +270,11 @@ def summarise(like: Likelihood, chain, ml: np.ndarray, profile: dict | None, *,
         summary[k] = summarise_samples(v, scale)
     # Samples widened about the median by sqrt(m1), for derived distances.
     wide = {k: np.median(v) + scale * (v - np.median(v)) for k, v in dil.items()}
-    fid = cosmology.distance_ratios(z_eff)
-    fid = {k: float(np.asarray(v)) for k, v in fid.items()}
+    # alpha measures the BAO scale against the template's, so D/r_d = alpha D_fid / r_d,tpl.
+    r_d_template = float(like.template.linear_power.sound_horizon)
+    rescale = float(cosmology.sound_horizon()) / r_d_template
+    fid = {k: float(np.asarray(v)) * rescale
+           for k, v in cosmology.distance_ratios(z_eff).items()}
     distances = {}
     corr = None
     if st.analysis == "isotropic":
@@ -294,7 +303,7 @@ def summarise(like: Likelihood, chain, ml: np.ndarray, profile: dict | None, *,
                    "n_samples": int(samples.shape[0]), "acceptance": chain.acceptance,
                    "resumed_from": chain.resumed_from, "note": chain.note}
     template = like.template
-    fiducial = dict(fid, r_d_template_Mpc=float(template.linear_power.sound_horizon),
+    fiducial = dict(fid, r_d_template_Mpc=r_d_template,
                     r_d_fiducial_Mpc=float(cosmology.sound_horizon()),
                     B_prior_centre=float(like.B_centre), B_prior_used=like.B_prior_used)
     if profile is not None and profile["error_minus"] is not None and \

@@ -207,7 +207,9 @@ class LinearPower:
     z : float
         Redshift of the spectrum.
     sound_horizon : float
-        Sound horizon of the spectrum's cosmology, Mpc (for the BAO peak position).
+        Sound horizon that sets the spectrum's BAO scale, Mpc: EH98 eq. 6 for the EH98
+        spectra, the cosmology's r_d for a tabulated file. Dilations are measured relative
+        to it, so distances D/r_d are converted with it.
     h : float
         Dimensionless Hubble constant of the spectrum's cosmology.
     source : str
@@ -358,9 +360,10 @@ class LinearPower:
         h, om, ob = float(cosmology.h), float(cosmology.omega_m), float(cosmology.omega_b)
         ref = k**n_s * eh98_nowiggle_transfer(k, h, om, ob, float(cosmology.T_cmb)) ** 2
         p_nw = smooth_nowiggle(k, p, ref, width_ln_k)
-        wm, wb = om * h * h, ob * h * h
+        # The table's BAO scale is the sound horizon of the code that made it: take the
+        # cosmology's r_d (set it to the Boltzmann code's r_drag for an exact conversion).
         return cls(k=k, power=p, power_nowiggle=p_nw, z=float(z),
-                   sound_horizon=eh98.sound_horizon_eq6(wm, wb, float(cosmology.T_cmb)), h=h,
+                   sound_horizon=float(cosmology.sound_horizon()), h=h,
                    source=str(path), meta={"width_ln_k": width_ln_k})
 
 

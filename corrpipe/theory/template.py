@@ -38,6 +38,7 @@ __all__ = [
     "BAOTemplate",
     "RECON_CONVENTIONS",
     "multipole_weights",
+    "wedge_weights",
     "legendre",
 ]
 
@@ -71,6 +72,38 @@ def multipole_weights(ells: Sequence[int], n_mu: int = 16) -> tuple[np.ndarray, 
     mu = 0.5 * (x + 1.0)
     w = 0.5 * w
     weights = np.array([(2 * ell + 1) * w * legendre(ell, mu) for ell in ells])
+    return mu, weights
+
+
+def wedge_weights(edges: Sequence[float], n_mu: int = 8) -> tuple[np.ndarray, np.ndarray]:
+    """Gauss-Legendre nodes inside each mu wedge and the weights of the wedge averages.
+
+    Parameters
+    ----------
+    edges : sequence of float
+        Increasing wedge edges in [0, 1], e.g. (0, 0.5, 1) for transverse and radial wedges.
+    n_mu : int
+        Nodes per wedge.
+
+    Returns
+    -------
+    mu : ndarray, shape (n_wedges * n_mu,)
+    weights : ndarray, shape (n_wedges, n_wedges * n_mu)
+        xi_w(s) = 1/(mu_b - mu_a) int_{mu_a}^{mu_b} xi(s, mu) dmu = sum_j weights[w, j] xi(s, mu_j)
+        (Kazin et al. 2012, MNRAS 419, 3223 [from memory]).
+    """
+    edges = np.asarray(edges, dtype=float)
+    if edges.ndim != 1 or edges.size < 2 or edges[0] < 0 or edges[-1] > 1 or \
+            np.any(np.diff(edges) <= 0):
+        raise InputError(f"wedge edges must increase within [0, 1], got {edges.tolist()}")
+    x, w = np.polynomial.legendre.leggauss(n_mu)
+    n_w = edges.size - 1
+    mu = np.empty(n_w * n_mu)
+    weights = np.zeros((n_w, n_w * n_mu))
+    for i in range(n_w):
+        a, b = edges[i], edges[i + 1]
+        mu[i * n_mu:(i + 1) * n_mu] = a + 0.5 * (b - a) * (x + 1.0)
+        weights[i, i * n_mu:(i + 1) * n_mu] = 0.5 * w
     return mu, weights
 
 

@@ -125,3 +125,10 @@ def test_file_errors(tmp_path):
     np.savetxt(narrow, np.column_stack([k, k]))
     with pytest.raises(InputError, match="0.005-0.5"):
         LinearPower.from_file(narrow, c)
+
+
+def test_template_sound_horizon_is_eh98_eq6():
+    # EH98 eq. 6 with the eq. 4 drag redshift: 151.035 Mpc (REFERENCES §1 [COMP]); this is the
+    # scale the EH98 wiggles sit at, and the r_d the fit converts alphas with.
+    assert LinearPower.eisenstein_hu(_cosmo(), 0.0).sound_horizon == pytest.approx(151.035,
+                                                                                 rel=2e-5)

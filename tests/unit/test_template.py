@@ -77,7 +77,7 @@ def test_dilation_kernel_against_quadrature_oracle():
 
     for o, ell in enumerate((0, 2, 4)):
         ref = [(2 * ell + 1) * quad(lambda m: xi_smu(si, m) * legendre(ell, m), 0, 1,
-                                    epsabs=1e-10, limit=200)[0] for si in s]
+                                    epsabs=1e-9, epsrel=1e-7, limit=400)[0] for si in s]
         np.testing.assert_allclose(got[o], ref, atol=1e-6 * np.max(np.abs(got[0])))
 
 
@@ -114,3 +114,20 @@ def test_remove_rsd_without_smoothing_has_no_quadrupole():
     keep = BAOTemplate(_lp(), recon_convention="keep-rsd")
     m2 = keep.multipoles(s, 1.0, 1.0, (0, 2), B=1.0, beta=0.6, sigma_par=5.0, sigma_perp=5.0)
     assert np.max(np.abs(m2[1])) > 0.1 * np.max(np.abs(m2[0]))
+
+
+def test_wedges_from_multipoles():
+    # xi_w = sum_ell xi_ell <L_ell>_w, with <L_ell>_w the mean of L_ell over the wedge (exact for
+    # a template with ell <= 4; Kazin et al. 2012 [from memory]; Legendre integrals by hand).
+    from corrpipe.theory.template import wedge_weights
+
+    tpl = BAOTemplate(_lp())
+    s = np.linspace(50, 150, 11)
+    params = dict(B=1.0, beta=0.4, sigma_par=10.0, sigma_perp=6.0, sigma_s=4.0)
+    mu, w = wedge_weights((0.0, 0.5, 1.0))
+    wedges = tpl.projected(s, 1.0, 1.0, mu, w, **params)
+    m = tpl.multipoles(s, 1.0, 1.0, (0, 2, 4), **params)
+    # mean of L2 on [0, .5]: (mu^3 - mu)/2 / 0.5 -> -0.375; on [.5, 1]: 0.375
+    # mean of L4 on [0, .5]: (7 mu^5 - 10 mu^3 + 3 mu)/8 / 0.5 -> 0.1171875; on [.5, 1]: -0.1171875
+    np.testing.assert_allclose(wedges[0], m[0] - 0.375 * m[1] + 0.1171875 * m[2], rtol=1e-10)
+    np.testing.assert_allclose(wedges[1], m[0] + 0.375 * m[1] - 0.1171875 * m[2], rtol=1e-10)

@@ -79,11 +79,14 @@ def test_realistic_covariance_posterior_is_unbiased(anisotropic):
 def test_distances_against_astropy_hand_calculation(anisotropic):
     # Hand calculation with astropy (FlatLambdaCDM, same parameters, massless neutrinos):
     # D_M = comoving transverse distance, D_H = c/H(z), D_V = [z D_M^2 D_H]^(1/3)
-    # (Eisenstein et al. 2005, REFERENCES §7); measured D/r_d = alpha x (D/r_d)_fid.
+    # (Eisenstein et al. 2005, REFERENCES §7); measured D/r_d = alpha x (D/r_d)_fid with the
+    # template's r_d, which for this cosmology is EH98 eq. 6: 151.0 Mpc (REFERENCES §1 [COMP]
+    # gives 151.035 Mpc for omega_m h^2 = 0.1424, omega_b h^2 = 0.02242).
     res, _, _ = anisotropic
     ap = FlatLambdaCDM(H0=100 * COSMO.h, Om0=COSMO.omega_m, Tcmb0=COSMO.T_cmb * u.K,
                        Neff=COSMO.N_eff, m_nu=0 * u.eV, Ob0=COSMO.omega_b)
-    r_d = COSMO.sound_horizon()
+    r_d = _lp().sound_horizon  # the template's BAO scale: EH98 eq. 6 (REFERENCES §1)
+    assert r_d == pytest.approx(151.035, rel=2e-3)
     d_m = ap.comoving_transverse_distance(Z).to_value(u.Mpc)
     d_h = (speed_of_light / ap.H(Z)).to_value(u.Mpc)
     d_v = np.cbrt(Z * d_m**2 * d_h)
