@@ -23,6 +23,7 @@ Dask is optional: it is imported only when a Dask engine is opened.
 from __future__ import annotations
 
 import contextlib
+import logging
 import os
 import threading
 import time
@@ -60,6 +61,7 @@ ENGINE_KINDS = ("threads", "dask")
 CLUSTER_KINDS = ("local", "slurm", "pbs", "sge", "lsf")
 _JOBQUEUE_CLASSES = {"slurm": "SLURMCluster", "pbs": "PBSCluster", "sge": "SGECluster",
                      "lsf": "LSFCluster"}
+_log = logging.getLogger(__name__)
 _BATCH_MEMORY = 256 * 2**20  # bytes of per-unit histograms one task may hold at once
 
 # One numba parallel region at a time per worker process: numba's default (workqueue) threading
@@ -380,63 +382,106 @@ n_regions, raw, progress, progress_path
 
 def _count_on_dask(client, settings: EngineSettings, prepared: PreparedCount, progress: bool,
                    progress_path, on_partial) -> PairCounts:
-    import distributed
     from tqdm.auto import tqdm
 
     from corrpipe.paircount.progress import ProgressSidecar
 
     sidecar = ProgressSidecar(progress_path, prepared) if progress_path is not None else None
     partials = sidecar.load() if sidecar is not None else []
-    done = [int(u) for p in partials for u in p.unit_ids]
     size = min(settings.batch_size(), _memory_cap(prepared))
-    batches = task_batches(prepared.n_units, size, done)
-    bar = tqdm(total=prepared.n_units, initial=len(done), unit="unit", disable=not progress,
+    n_done = sum(int(p.unit_ids.size) for p in partials)
+    bar = tqdm(total=prepared.n_units, initial=n_done, unit="unit", disable=not progress,
                desc=f"pairs {'auto' if prepared.auto else 'cross'} (dask)", leave=False)
-    futures = []
-    data = None
+    run = _DaskRun(client, settings, prepared, sidecar, partials, bar, on_partial)
     try:
-        if batches:
-            data = client.scatter(prepared, broadcast=True, hash=False)
-            tag = prepared.fingerprint()[:12]
-            futures = [client.submit(_count_task, data, batch, settings.threads_per_worker,
-                                     key=f"corrpipe-count-{tag}-{batch[0]:06d}-{time.time_ns()}",
-                                     pure=False)
-                       for batch in batches]
-        started = time.perf_counter()
-        pairs_here = 0
-        for future in distributed.as_completed(futures, loop=client.loop):
-            part = _result_of(future, prepared, len(partials), sidecar)
-            if sidecar is not None:
-                sidecar.save(part)
-            partials.append(part)
-            pairs_here += part.n_pairs
-            bar.update(int(part.unit_ids.size))
-            elapsed = max(time.perf_counter() - started, 1e-9)
-            bar.set_postfix_str(f"{pairs_here / elapsed:.3g} pairs/s", refresh=False)
-            if on_partial is not None:
-                on_partial(part)
+        for attempt in range(_SCATTER_ATTEMPTS):
+            done = [int(u) for p in partials for u in p.unit_ids]
+            batches = task_batches(prepared.n_units, size, done)
+            if not batches:
+                break
+            try:
+                run.submit_and_collect(batches)
+                break
+            except _ScatteredDataLost as lost:
+                if attempt == _SCATTER_ATTEMPTS - 1:
+                    raise run.failure(lost.__cause__, "the catalogue scattered to the workers "
+                                      f"was lost {_SCATTER_ATTEMPTS} times") from lost.__cause__
+                _log.warning("every worker holding the scattered catalogue was lost; "
+                             "scattering it again and resubmitting the missing units")
+                _wait_for_workers(client, settings, None)
     finally:
         bar.close()
-        unfinished = [f for f in futures if not f.done()]
-        if unfinished:
-            client.cancel(unfinished)
-        if data is not None:
-            client.cancel([data])
     return reduce_partials(prepared, partials)
 
 
-def _result_of(future, prepared: PreparedCount, n_saved: int, sidecar) -> PartialCounts:
-    try:
-        return future.result()
-    except CorrpipeError:
-        raise
-    except Exception as exc:  # a task that failed for good: worker deaths, lost data, ...
-        where = (f"the {n_saved} finished batches are saved in {sidecar.path}; run again to "
-                 "count only the missing units" if sidecar is not None else
-                 "give a progress_path to keep finished units across such failures")
-        message = (f"a Dask pair-count task failed ({type(exc).__name__}: {exc}); {where}. "
-                   "Check the workers' logs (memory limit, killed processes)")
-        raise StageError(message) from exc
+_SCATTER_ATTEMPTS = 3
+
+
+class _ScatteredDataLost(Exception):
+    """Internal: the scattered PreparedCount is gone from the cluster (all holders died)."""
+
+
+class _DaskRun:
+    """One Dask pair count: scatter, submit, save partials as they arrive."""
+
+    def __init__(self, client, settings, prepared, sidecar, partials, bar, on_partial):
+        self.client, self.settings, self.prepared = client, settings, prepared
+        self.sidecar, self.partials, self.bar, self.on_partial = sidecar, partials, bar, on_partial
+        self.tag = prepared.fingerprint()[:12]
+        self.started = time.perf_counter()
+        self.pairs_here = 0
+
+    def submit_and_collect(self, batches: list) -> None:
+        import distributed
+
+        client = self.client
+        data = client.scatter(self.prepared, broadcast=True, hash=False)
+        stamp = time.time_ns()
+        pending = {}
+        for batch in batches:
+            future = client.submit(_count_task, data, batch, self.settings.threads_per_worker,
+                                   key=f"corrpipe-count-{self.tag}-{batch[0]:06d}-{stamp}",
+                                   pure=False)
+            pending[future.key] = future
+        try:
+            for future in distributed.as_completed(list(pending.values()), loop=client.loop):
+                try:
+                    part = future.result()
+                except CorrpipeError:
+                    raise
+                except Exception as exc:  # worker deaths, lost data, ...
+                    if data.status != "finished":
+                        raise _ScatteredDataLost() from exc
+                    raise self.failure(exc, "a task failed for good") from exc
+                # forget the result on the cluster: a later worker loss must not recompute it
+                pending.pop(future.key).release()
+                del future
+                self._record(part)
+        finally:
+            if pending:
+                client.cancel(list(pending.values()))
+            client.cancel([data])
+
+    def _record(self, part: PartialCounts) -> None:
+        if self.sidecar is not None:
+            self.sidecar.save(part)
+        self.partials.append(part)
+        self.pairs_here += part.n_pairs
+        self.bar.update(int(part.unit_ids.size))
+        elapsed = max(time.perf_counter() - self.started, 1e-9)
+        self.bar.set_postfix_str(f"{self.pairs_here / elapsed:.3g} pairs/s", refresh=False)
+        if self.on_partial is not None:
+            self.on_partial(part)
+
+    def failure(self, exc, what: str) -> StageError:
+        n_saved = len(self.partials)
+        if self.sidecar is not None:
+            where = (f"the {n_saved} finished batches are saved in {self.sidecar.path}; run "
+                     "again to count only the missing units")
+        else:
+            where = "give a progress_path to keep finished units across such failures"
+        return StageError(f"Dask pair count: {what} ({type(exc).__name__}: {exc}); {where}. "
+                          "Check the workers' logs (memory limit, killed processes)")
 
 
 # ---------------------------------------------------------------------------- mock batches

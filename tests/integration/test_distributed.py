@@ -146,6 +146,29 @@ def test_killed_worker_still_finishes_with_identical_counts(engine, survey, refe
     client.wait_for_workers(2, timeout=30)  # the nanny brings the worker back for later tests
 
 
+def test_losing_every_worker_rescatters_and_finishes_identical(engine, survey, reference):
+    # reference: threads engine; scattered data has no lineage in Dask (distributed docs,
+    # "Data Locality"/scatter), so the engine must scatter the catalogue again itself
+    settings, client = engine
+    pos, weights, regions = survey
+    client.wait_for_workers(2, timeout=30)
+    pids = client.run(os.getpid)
+    killed = []
+
+    def kill_every_worker(part):
+        if not killed:
+            for pid in pids.values():
+                os.kill(pid, signal.SIGKILL)
+            killed.append(len(pids))
+
+    result = count_pairs_on(settings, pos, weights, binning=BINNING, regions1=regions,
+                            n_regions=4, raw=True, client=client, on_partial=kill_every_worker)
+    assert killed == [2]
+    _assert_identical(result, reference)
+    assert not set(pids) & set(client.scheduler_info()["workers"])
+    client.wait_for_workers(2, timeout=30)
+
+
 def test_aborted_run_resumes_from_sidecar(engine, survey, reference, tmp_path):
     # reference: threads engine; the resumed run must redo only the batches not saved
     settings, client = engine
