@@ -14,7 +14,7 @@ import numpy as np
 
 from corrpipe.errors import InputError
 from corrpipe.fit.settings import FitSettings
-from corrpipe.theory.kernels import dilated_projection
+from corrpipe.theory.kernels import dilated_projection, dilated_projection_damped
 from corrpipe.theory.template import BAOTemplate, multipole_weights, wedge_weights
 
 __all__ = ["Likelihood", "Parameter", "PHYSICAL_NAMES", "check_covariance"]
@@ -44,6 +44,14 @@ class Parameter:
             return 0.0
         u = (np.log(x) - np.log(self.centre) if self.log_gaussian else x - self.centre)
         return -0.5 * (u / self.width) ** 2
+
+
+def _damping_axis(centre: float, width: float, step: float) -> np.ndarray:
+    """Uniform damping-scale axis over centre +- 3 width, inside [0, 30] Mpc/h."""
+    lo = max(0.0, centre - 3.0 * width)
+    hi = min(30.0, centre + 3.0 * width)
+    n = max(2, int(np.ceil((hi - lo) / step - 1e-9)) + 1)
+    return lo + (hi - lo) / (n - 1) * np.arange(n)
 
 
 def check_covariance(cov: np.ndarray, what: str) -> np.ndarray:
@@ -98,6 +106,8 @@ class Likelihood:
     wedges : sequence of float, optional
         Wedge edges in mu; the data vector then holds one block per wedge (all fitted) and
         ``ells`` is ignored.
+    progress : bool
+        Show a bar while tabulating the template over damping scales (free damping only).
 
     Notes
     -----
@@ -106,11 +116,17 @@ class Likelihood:
     chi^2 = r^T [Psi - Psi A (A^T Psi A)^-1 A^T Psi] r with r = d - template (e.g. Taylor
     et al. 2010, MNRAS 408, 1502 [from memory]; common practice). The matrix in brackets is
     precomputed, so an evaluation is one kernel call and one matrix-vector product.
+
+    Free damping scales (``sigma_prior_width > 0``): the template is tabulated once on a grid
+    of (Sigma_par, Sigma_perp) spanning the prior centre +- 3 widths (step min(1, width/2)
+    Mpc/h; the Gaussian prior is truncated there) and interpolated bilinearly, so an
+    evaluation stays a single kernel call. Sigma_s stays fixed.
     """
 
     def __init__(self, data_s, data_vector, covariance, ells: Sequence[int],
                  template: BAOTemplate, settings: FitSettings = FitSettings(), *,
-                 precision_factor: float = 1.0, wedges: Sequence[float] | None = None) -> None:
+                 precision_factor: float = 1.0, wedges: Sequence[float] | None = None,
+                 progress: bool = False) -> None:
         self.settings = settings
         self.template = template
         s = np.asarray(data_s, dtype=float)
@@ -193,11 +209,17 @@ class Likelihood:
         self._fixed = {"alpha_par": 1.0, "alpha_perp": 1.0, "B": 1.0, "beta": settings.beta,
                        "sigma_par": sig_par, "sigma_perp": sig_perp,
                        "sigma_s": settings.sigma_s}
+        self._free_damping = settings.sigma_prior_width > 0
+        if self._free_damping:
+            w = settings.sigma_prior_width
+            step = min(1.0, 0.5 * w)
+            self._damping_axes = tuple(_damping_axis(c, w, step) for c in (sig_par, sig_perp))
+            self._piece_grid = template.piece_grid(*self._damping_axes, settings.sigma_s,
+                                                   progress=progress)
         self.B_centre = self._amplitude_at_fiducial()
         self.parameters = self._build_parameters()
         self.names = tuple(p.name for p in self.parameters)
         self.n_dim = len(self.parameters)
-        self._free_damping = settings.sigma_prior_width > 0
         self._pos = {n: i for i, n in enumerate(self.names)}
 
     # ------------------------------------------------------------------ set-up helpers
@@ -235,11 +257,10 @@ class Likelihood:
         out.append(Parameter("B", st.B_min, st.B_max, b_centre, b_width, log_gaussian=True))
         if st.analysis == "anisotropic" and st.beta_prior_width > 0:
             out.append(Parameter("beta", 0.0, 3.0, st.beta, st.beta_prior_width))
-        if st.sigma_prior_width > 0:
-            out.append(Parameter("sigma_par", 0.0, 30.0, self._fixed["sigma_par"],
-                                 st.sigma_prior_width))
-            out.append(Parameter("sigma_perp", 0.0, 30.0, self._fixed["sigma_perp"],
-                                 st.sigma_prior_width))
+        if self._free_damping:
+            for name, axis in zip(("sigma_par", "sigma_perp"), self._damping_axes):
+                out.append(Parameter(name, float(axis[0]), float(axis[-1]), self._fixed[name],
+                                     st.sigma_prior_width))
         return tuple(out)
 
     # ------------------------------------------------------------------ parameters
@@ -262,11 +283,21 @@ class Likelihood:
     # ------------------------------------------------------------------ evaluation
     def template_model(self, phys: dict) -> np.ndarray:
         """Template part of the model vector (no broadband), length n_data."""
-        pieces = self.template.pieces(phys["sigma_par"], phys["sigma_perp"], phys["sigma_s"])
         b, beta = phys["B"], phys["beta"]
         coeffs = np.array([b, 2.0 * b * beta, b * beta * beta])
-        dilated_projection(self._grid0, self._step, pieces, coeffs, self.s, self._mu,
-                           self._weights, phys["alpha_par"], phys["alpha_perp"], self._out)
+        if self._free_damping:
+            a, c = self._damping_axes
+            dilated_projection_damped(self._grid0, self._step, self._piece_grid, a[0],
+                                      a[1] - a[0], c[0], c[1] - c[0], phys["sigma_par"],
+                                      phys["sigma_perp"], coeffs, self.s, self._mu,
+                                      self._weights, phys["alpha_par"], phys["alpha_perp"],
+                                      self._out)
+        else:
+            pieces = self.template.pieces(phys["sigma_par"], phys["sigma_perp"],
+                                          phys["sigma_s"])
+            dilated_projection(self._grid0, self._step, pieces, coeffs, self.s, self._mu,
+                               self._weights, phys["alpha_par"], phys["alpha_perp"],
+                               self._out)
         return self._out.ravel().copy()
 
     def chi2(self, theta) -> float:

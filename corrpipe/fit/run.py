@@ -35,14 +35,15 @@ def build_linear_power(cosmology: Any, z: float, settings: FitSettings) -> Linea
 def build_likelihood(s, data_vector, covariance, ells: Sequence[int], *, cosmology: Any,
                      z_eff: float, settings: FitSettings = FitSettings(),
                      precision_factor: float = 1.0,
-                     linear_power: LinearPower | None = None) -> Likelihood:
+                     linear_power: LinearPower | None = None,
+                     progress: bool = False) -> Likelihood:
     """Template at the fiducial cosmology and the likelihood of the given data."""
     settings.validate()
     lp = linear_power if linear_power is not None else build_linear_power(cosmology, z_eff,
                                                                           settings)
     template = BAOTemplate.from_settings(lp, settings)
     return Likelihood(s, data_vector, covariance, ells, template, settings,
-                      precision_factor=precision_factor)
+                      precision_factor=precision_factor, progress=progress)
 
 
 def _objective(like: Likelihood):
@@ -228,7 +229,7 @@ def fit_multipoles(s, data_vector, covariance, ells: Sequence[int], *, cosmology
     seed = settings.seed if seed is None else int(seed)
     like = build_likelihood(s, data_vector, covariance, ells, cosmology=cosmology, z_eff=z_eff,
                             settings=settings, precision_factor=precision_factor,
-                            linear_power=linear_power)
+                            linear_power=linear_power, progress=progress)
     ml = best_fit(like)
     model_hash = "-".join([settings.model_hash(), _data_hash(s, data_vector, covariance, ells,
                                                               [z_eff, precision_factor]),

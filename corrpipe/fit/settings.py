@@ -80,10 +80,11 @@ class FitSettings:
                                        low=0.0, high=30.0)
     sigma_s: float = setting(4.0, "finger-of-god damping scale", unit="Mpc/h", low=0.0,
                              high=30.0)
-    sigma_prior_width: float = setting(0.0, "Gaussian prior width on sigma_par and sigma_perp "
-                                       "(0: fixed; free damping recomputes the template at "
-                                       "each step and is ~100x slower)", unit="Mpc/h",
-                                       low=0.0, high=30.0)
+    sigma_prior_width: float = setting(0.0, "Gaussian prior width on sigma_par and sigma_perp, "
+                                       "truncated at 3 widths (0: fixed; free damping "
+                                       "tabulates the template over the prior once, a few "
+                                       "seconds to a minute)", unit="Mpc/h", low=0.0,
+                                       high=10.0)
     beta: float = setting(0.4, "RSD parameter beta = f/b (prior centre)", low=0.0, high=3.0)
     beta_prior_width: float = setting(0.2, "Gaussian prior width on beta in anisotropic fits "
                                       "(0: fixed; isotropic fits always fix beta)", low=0.0,

@@ -215,6 +215,36 @@ class BAOTemplate:
             self._cache_key, self._cache = key, out
         return self._cache
 
+    def piece_grid(self, sigma_par_values, sigma_perp_values, sigma_s: float,
+                   progress: bool = False) -> np.ndarray:
+        """Template pieces on a grid of damping scales (for free Sigma_par, Sigma_perp).
+
+        Parameters
+        ----------
+        sigma_par_values, sigma_perp_values : array_like
+            Uniformly spaced damping scales, Mpc/h.
+        sigma_s : float
+            Finger-of-god scale, Mpc/h (fixed).
+        progress : bool
+            Show a tqdm bar.
+
+        Returns
+        -------
+        ndarray, shape (n_par, n_perp, 3, 3, n_grid)
+        """
+        from tqdm.auto import tqdm
+
+        a = np.asarray(sigma_par_values, dtype=float)
+        b = np.asarray(sigma_perp_values, dtype=float)
+        out = np.empty((a.size, b.size, 3, 3, self.grid.size))
+        with tqdm(total=a.size * b.size, desc="fit: damping grid", disable=not progress,
+                  leave=False) as bar:
+            for i, sa in enumerate(a):
+                for j, sb in enumerate(b):
+                    out[i, j] = self.pieces(sa, sb, sigma_s)
+                    bar.update()
+        return out
+
     @staticmethod
     def term_coefficients(B: float, beta: float) -> np.ndarray:
         """Weights (B, 2 B beta, B beta^2) of the three template terms."""
