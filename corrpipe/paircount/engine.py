@@ -246,15 +246,15 @@ def _auto_refine(n_points: int, volume: float, radius: float) -> int:
 
 
 def _lookup_table(edges: np.ndarray):
-    """Table mapping a separation to a first guess of its bin (corrected exactly later)."""
+    """Table from a squared separation to a first guess of its bin (corrected exactly later)."""
     n_bins = edges.size - 1
-    span = edges[-1] - edges[0]
-    widths = np.diff(edges)
-    n_lut = int(min(max(2 * n_bins, np.ceil(2 * span / widths.min())), 8192))
+    e2 = edges * edges
+    span = e2[-1] - e2[0]
+    n_lut = int(min(max(4 * n_bins, np.ceil(2 * span / np.diff(e2).min())), 16384))
     scale = n_lut / span
-    values = edges[0] + np.arange(n_lut) / scale
-    lut = np.clip(np.searchsorted(edges, values, side="right") - 1, 0, n_bins - 1).astype(np.int64)
-    return lut, float(edges[0]), float(scale)
+    values = e2[0] + np.arange(n_lut) / scale
+    lut = np.clip(np.searchsorted(e2, values, side="right") - 1, 0, n_bins - 1).astype(np.int64)
+    return lut, float(e2[0]), float(scale)
 
 
 def plan_units(start1: np.ndarray, start2: np.ndarray, grid: Grid, offsets: np.ndarray,
@@ -373,7 +373,7 @@ def prepare_count(positions1, weights1=None, positions2=None, weights2=None, *,
     units = plan_units(cat1.start, cat2.start, grid, offsets, kinds, n_units)
 
     first = binning.edges[0]
-    lut, v0, lut_scale = _lookup_table(first)
+    lut, q0, lut_scale = _lookup_table(first)
     if binning.mode == "s":
         edges_b = np.array([0.0, 1.0])
     else:
@@ -386,10 +386,11 @@ def prepare_count(positions1, weights1=None, positions2=None, weights2=None, *,
         box=float(box_size) if box_size is not None else 0.0, mode=_MODE_CODE[binning.mode],
         los=_LOS_CODE[los], orient=orient,
         q_lo=binning.min_radius**2, q_hi=radius**2,
-        lut=lut, v0=v0, lut_scale=lut_scale, e2=first * first,
+        lut=lut, q0=q0, lut_scale=lut_scale, e2=first * first,
         edges_b=np.ascontiguousarray(edges_b), uniform_b=uniform_b,
         abs_mu=not mu_signed, inv_width_b=float(1.0 / widths_b[0]),
         pi_lo=pi_lo, pi_hi=pi_hi,
+        max_occupancy=int(np.diff(cat2.start).max(initial=0)) + 1,
     )
     return PreparedCount(binning=binning, los=los, auto=auto, box_size=box_size,
                          n_regions=n_regions, raw=bool(raw), grid=grid, cat1=cat1, cat2=cat2,
@@ -433,9 +434,9 @@ def count_units(prepared: PreparedCount, unit_ids) -> PartialCounts:
         lo, hi, c1.x, c1.y, c1.z, c1.w, c1.regions, c1.order, c1.start,
         c2.x, c2.y, c2.z, c2.w, c2.regions, c2.order, c2.start,
         a["shape"], a["offsets"], a["kinds"], a["periodic"], a["box"], a["mode"], a["los"],
-        a["orient"], a["q_lo"], a["q_hi"], a["lut"], a["v0"], a["lut_scale"], a["e2"],
+        a["orient"], a["q_lo"], a["q_hi"], a["lut"], a["q0"], a["lut_scale"], a["e2"],
         a["edges_b"], a["uniform_b"], a["abs_mu"], a["inv_width_b"], a["pi_lo"], a["pi_hi"],
-        hist_w, hist_raw, both, one, prepared.raw, nreg > 0)
+        hist_w, hist_raw, both, one, prepared.raw, nreg > 0, a["max_occupancy"])
     weighted = _ordered_sum(hist_w, nflat)
     raw = _ordered_sum(hist_raw, nflat, np.int64) if prepared.raw else None
     region_both = _ordered_sum(both, (nreg, nflat)) if nreg else None

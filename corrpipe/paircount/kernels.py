@@ -125,9 +125,9 @@ def cell_pair_costs(start1, start2, shape, offsets, kinds, periodic):
 
 
 @njit(cache=True, inline="always")
-def _first_bin(q, v, v0, lut, lut_scale, e2):
-    """Bin of a squared separation ``q`` (value v = sqrt(q)) on squared edges ``e2``."""
-    c = int((v - v0) * lut_scale)
+def _first_bin(q, q0, lut, lut_scale, e2):
+    """Bin of a squared separation ``q`` on squared edges ``e2`` (table guess, exact correction)."""
+    c = int((q - q0) * lut_scale)
     c = min(max(c, 0), lut.shape[0] - 1)
     k = lut[c]
     while k > 0 and q < e2[k]:
@@ -158,8 +158,8 @@ def _second_bin(t, edges, uniform, inv_width):
 @njit(cache=True)
 def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, o2, start2,
                 shape, offsets, kinds, periodic, box, mode, los, orient, q_lo, q_hi,
-                lut, v0, lut_scale, e2, edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-                hist_w, hist_raw, both, one, with_raw, with_regions):
+                lut, q0, lut_scale, e2, edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
+                hist_w, hist_raw, both, one, with_raw, with_regions, jbuf, qbuf):
     """Count the pairs of catalogue-1 cells ``c_lo <= c1 < c_hi`` into one unit's histograms."""
     nb = edges_b.shape[0] - 1
     half = 0.5 * box
@@ -187,31 +187,35 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
                 zi = z1[i]
                 wi = w1[i]
                 jlo = i + 1 if kind == 1 else b0
+                # pass 1, branch-free: keep the candidates within [q_lo, q_hi)
+                m = 0
                 for j in range(jlo, b1):
                     dx = x2[j] - xi
                     dy = y2[j] - yi
                     dz = z2[j] - zi
                     if periodic:
-                        if dx > half:
-                            dx -= box
-                        elif dx < -half:
-                            dx += box
-                        if dy > half:
-                            dy -= box
-                        elif dy < -half:
-                            dy += box
-                        if dz > half:
-                            dz -= box
-                        elif dz < -half:
-                            dz += box
+                        dx += box * ((dx < -half) * 1.0 - (dx > half) * 1.0)
+                        dy += box * ((dy < -half) * 1.0 - (dy > half) * 1.0)
+                        dz += box * ((dz < -half) * 1.0 - (dz > half) * 1.0)
                     d2 = dx * dx + dy * dy + dz * dz
-                    if d2 >= q_hi or d2 < q_lo:
-                        continue
-                    k0 = 0
+                    jbuf[m] = j
+                    qbuf[m] = d2
+                    m += (d2 < q_hi) & (d2 >= q_lo)
+                # pass 2: bin the kept pairs
+                for t in range(m):
+                    j = jbuf[t]
+                    d2 = qbuf[t]
                     k1 = 0
                     if mode == 0:
-                        k0 = _first_bin(d2, np.sqrt(d2), v0, lut, lut_scale, e2)
+                        k0 = _first_bin(d2, q0, lut, lut_scale, e2)
                     else:
+                        dx = x2[j] - xi
+                        dy = y2[j] - yi
+                        dz = z2[j] - zi
+                        if periodic:
+                            dx += box * ((dx < -half) * 1.0 - (dx > half) * 1.0)
+                            dy += box * ((dy < -half) * 1.0 - (dy > half) * 1.0)
+                            dz += box * ((dz < -half) * 1.0 - (dz > half) * 1.0)
                         # orientation of the pair: d points from the "first" member
                         sgn = 1.0
                         first_is_j = False
@@ -247,11 +251,11 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
                                 ly = yi * ni + y2[j] * nj
                                 lz = zi * ni + z2[j] * nj
                             l2 = lx * lx + ly * ly + lz * lz
-                            dl = (dx * lx + dy * ly + dz * lz) / np.sqrt(l2)
+                            dl = dx * lx + dy * ly + dz * lz
                         dl *= sgn
                         if mode == 1:
                             if d2 > 0.0:
-                                mu = dl / np.sqrt(d2)
+                                mu = dl / np.sqrt(l2 * d2)
                             else:
                                 mu = 0.0
                             if mu > 1.0:
@@ -263,9 +267,9 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
                             k1 = _second_bin(mu, edges_b, uniform_b, inv_width_b)
                             if k1 < 0:
                                 continue
-                            k0 = _first_bin(d2, np.sqrt(d2), v0, lut, lut_scale, e2)
+                            k0 = _first_bin(d2, q0, lut, lut_scale, e2)
                         else:
-                            pi = abs(dl)
+                            pi = abs(dl) / np.sqrt(l2)
                             if pi >= pi_hi or pi < pi_lo:
                                 continue
                             rp2 = d2 - pi * pi
@@ -274,7 +278,7 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
                             if rp2 >= e2[e2.shape[0] - 1] or rp2 < e2[0]:
                                 continue
                             k1 = _second_bin(pi, edges_b, uniform_b, inv_width_b)
-                            k0 = _first_bin(rp2, np.sqrt(rp2), v0, lut, lut_scale, e2)
+                            k0 = _first_bin(rp2, q0, lut, lut_scale, e2)
                     flat = k0 * nb + k1
                     w = wi * w2[j]
                     hist_w[flat] += w
@@ -295,9 +299,9 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
 @njit(cache=True, parallel=True)
 def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
                      x2, y2, z2, w2, r2, o2, start2, shape, offsets, kinds, periodic, box,
-                     mode, los, orient, q_lo, q_hi, lut, v0, lut_scale, e2,
+                     mode, los, orient, q_lo, q_hi, lut, q0, lut_scale, e2,
                      edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-                     hist_w, hist_raw, both, one, with_raw, with_regions):
+                     hist_w, hist_raw, both, one, with_raw, with_regions, max_occupancy):
     """Count a batch of work units in parallel, one histogram slice per unit.
 
     ``unit_lo[u] <= c1 < unit_hi[u]`` are the catalogue-1 cells of unit u. Histograms have a
@@ -308,9 +312,11 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
     n_units = unit_lo.shape[0]
     accepted = np.zeros(n_units, dtype=np.int64)
     for u in prange(n_units):
+        jbuf = np.empty(max_occupancy, dtype=np.int64)
+        qbuf = np.empty(max_occupancy, dtype=np.float64)
         accepted[u] = _count_unit(
             unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, o2,
             start2, shape, offsets, kinds, periodic, box, mode, los, orient, q_lo, q_hi,
-            lut, v0, lut_scale, e2, edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-            hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions)
+            lut, q0, lut_scale, e2, edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
+            hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions, jbuf, qbuf)
     return accepted
