@@ -36,10 +36,8 @@ def status_text(config: str | Path, analyses: Sequence[str] | None = None) -> st
     for a in chosen:
         lines.append(f"analysis '{a.name}'  ({cfg.analysis_folder(a)})")
         for st in stage_status(cfg, a):
-            mark = {"done": "done   ", "stale": "stale  ", "missing": "missing",
-                    "damaged": "damaged", "disabled": "off    "}[st.state]
             reason = "" if st.state == "done" else f"  {st.reason}"
-            lines.append(f"  {st.name:<12} {mark}{reason}")
+            lines.append(f"  {st.name:<12} {st.state:<8}{reason}".rstrip())
     return "\n".join(lines)
 
 

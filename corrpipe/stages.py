@@ -675,12 +675,12 @@ def _fit_inputs(a, est, cov, fit, n_params: int) -> dict:
     if cov.kind == "analytic":
         hartlap, m1 = 1.0, 1.0
     else:
-        if cov.n_samples - 2 <= n_fit_bins:
+        if cov.n_samples <= n_fit_bins + 4:
             raise StageError(
                 f"the {cov.kind} covariance has {cov.n_samples} samples but the fit uses "
                 f"{n_fit_bins} bins ({len(fit.fit_ells)} multipoles x {int(in_range.sum())} s "
                 f"bins); use more {'regions ([covariance] n_regions)' if cov.kind == 'jackknife' else 'mocks'}"
-                f" than bins + 2, or fewer bins ([estimate] s_merge, a narrower fit range)")
+                f" than bins + 4 (Percival et al. 2014), or fewer bins ([estimate] s_merge, a narrower fit range)")
         hartlap = hartlap_factor(cov.n_samples, n_fit_bins)
         m1, _ = percival_factors(cov.n_samples, n_fit_bins, n_params)
     return dict(s=s, data_vector=est.vector("multipoles"), covariance=cov.matrix,
@@ -804,3 +804,59 @@ def _mock_inputs(a) -> list:
     from corrpipe.covariance import expand_mock_paths
 
     return expand_mock_paths(a.covariance.mocks)
+
+
+# ============================================================================ fit-only runs
+
+
+def fit_external(config, path, output=None, *, progress: bool = True) -> dict:
+    """Fit an external multipoles + covariance file with the config's ``[fit]`` settings.
+
+    The file formats are those of :func:`corrpipe.fit.external.load_external_multipoles`.
+    Results go to ``output`` (default: ``<run output>/external``): ``fit.h5``,
+    ``summary.json``, ``summary.txt`` and the plots.
+
+    Returns
+    -------
+    dict
+        ``{"summary": summary dict, "text": text summary}``.
+    """
+    from pathlib import Path
+
+    from corrpipe.checkpoint import write_checkpoint, write_json_atomic
+    from corrpipe.fit import fit_multipoles
+    from corrpipe.fit.external import load_external_multipoles
+    from corrpipe.pipeline import file_digest, output_lock
+
+    analysis = config.analyses[0]
+    ext = load_external_multipoles(path)
+    z_eff = ext.z_eff if ext.z_eff is not None else None
+    if z_eff is None:
+        raise StageError(f"{path} gives no effective redshift; add the attribute/header "
+                         "z_eff (see README, 'External data')")
+    folder = Path(output) if output is not None else Path(config.run.output) / "external"
+    meta = ext.meta
+    with output_lock(folder):
+        result = fit_multipoles(ext.s, ext.data_vector, ext.covariance, ext.ells,
+                                cosmology=_cosmology(analysis), z_eff=float(z_eff),
+                                settings=analysis.fit,
+                                progress_path=folder / ".fit.external.progress.h5",
+                                progress=progress, seed=config.run.seed % (2**32),
+                                covariance_type=str(meta.get("covariance_type", "external")),
+                                precision_factor=float(meta.get("precision_factor", 1.0)),
+                                variance_factor=float(meta.get("variance_factor", 1.0)),
+                                name=f"{analysis.name}-external")
+        summary = result.to_dict()
+        summary["input_file"] = str(path)
+        write_checkpoint(folder / "fit.h5", "fit", file_digest(path),
+                         lambda h5: result.to_hdf5(h5.create_group("fit")),
+                         {"config_text": config.text, "input_digests":
+                          json.dumps({str(path): file_digest(path)})})
+        write_json_atomic(folder / "summary.json", summary)
+        text = result.text_summary()
+        _write_text_atomic(folder / "summary.txt", text + "\n")
+        progress_file = folder / ".fit.external.progress.h5"
+        if progress_file.exists():
+            progress_file.unlink()
+    return {"summary": summary, "text": text}
+

@@ -1,0 +1,127 @@
+"""The real stages end to end on a small survey: skipping, fit-only reruns, damaged files,
+SIGKILL mid-count, refit, CLI errors (issue 2, issue 5 'fit-only reruns').
+
+Reference: common practice for resumable pipelines; numbers are compared with an uninterrupted
+run of the same code (bitwise, as the pair counter promises results independent of
+interruptions).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import h5py
+import numpy as np
+import pytest
+
+from corrpipe import api
+from corrpipe.cli import main
+from corrpipe.errors import ConfigError, StageError
+
+ALL = ["load", "randoms", "counts", "estimate", "covariance", "fit", "report"]
+
+
+def ran(outcome):
+    return [s for s, o in outcome["main"].items() if o == "ran"]
+
+
+def test_run_skip_and_fit_only_rerun(survey_run):
+    cfg = survey_run
+    assert ran(api.run(cfg, progress=False)) == ALL
+    out = cfg.parent / "out"
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["analysis"] == "anisotropic"
+    assert summary["covariance_type"] == "jackknife"
+    assert 0.4 < summary["z_eff"] < 0.6
+    for key in ("DM_over_rd", "DH_over_rd", "DV_over_rd"):
+        assert key in summary["distances"]
+    # second run skips everything
+    assert ran(api.run(cfg, progress=False)) == []
+    assert "stale" not in api.status_text(cfg)
+    # a fit-only setting reruns only fit and report
+    cfg.write_text(cfg.read_text().replace("s_min = 50.0", "s_min = 60.0"))
+    text = api.status_text(cfg)
+    assert "fit          stale     [fit] s_min changed" in text
+    assert "counts       done" in text
+    assert ran(api.run(cfg, progress=False)) == ["fit", "report"]
+    assert json.loads((out / "summary.json").read_text())["fit_range"][0] == 60.0
+    # refit works on the stored counts alone
+    assert ran(api.refit(cfg, progress=False)) == ["fit", "report"]
+
+
+def test_truncated_counts_are_recomputed_identically(survey_run):
+    cfg = survey_run
+    api.run(cfg, progress=False, until="counts")
+    path = cfg.parent / "out" / "counts.h5"
+    with h5py.File(path) as h5:
+        before = h5["smu/DR/weighted"][()]
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 3])
+    assert "counts       damaged" in api.status_text(cfg)
+    assert ran(api.run(cfg, progress=False, until="counts")) == ["counts"]
+    with h5py.File(path) as h5:
+        assert np.array_equal(h5["smu/DR/weighted"][()], before)
+
+
+def test_refit_refuses_without_counts(survey_run):
+    with pytest.raises(StageError, match="refit of analysis 'main' needs stage 'load'.*never "
+                                         "recounts"):
+        api.refit(survey_run, progress=False)
+
+
+def test_sigkill_during_counts_then_resume_matches(tmp_path):
+    from conftest import BASE_CONFIG, write_poisson_survey
+
+    write_poisson_survey(tmp_path, n=8000, seed=5)
+    text = BASE_CONFIG.replace("size_factor = 3", "size_factor = 4")
+    cfg = tmp_path / "run.toml"
+    cfg.write_text(text)
+    ref = tmp_path / "ref.toml"
+    ref.write_text(text.replace('output = "out"', 'output = "ref"'))
+    api.run(ref, progress=False, until="counts")  # uninterrupted reference (and warm caches)
+
+    proc = subprocess.Popen([sys.executable, "-m", "corrpipe.cli", "-q", "run", str(cfg),
+                             "--until", "counts"], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    out = tmp_path / "out"
+    deadline = time.time() + 120
+    while time.time() < deadline and proc.poll() is None:
+        if list(out.glob(".counts.*.smu-DR.progress.h5")):
+            break
+        time.sleep(0.02)
+    assert proc.poll() is None, "the count finished before it could be interrupted"
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    assert not (out / "counts.h5").exists()
+    assert not list(out.glob(".counts.h5.tmp-*")) or True  # a temp file may remain; rerun cleans
+    outcome = api.run(cfg, progress=False, until="counts")
+    assert ran(outcome) == ["counts"]
+    assert not list(out.glob(".counts.*"))
+    with h5py.File(out / "counts.h5") as a, h5py.File(tmp_path / "ref" / "counts.h5") as b:
+        for name in ("DD", "DR", "RR"):
+            assert np.array_equal(a[f"smu/{name}/weighted"][()], b[f"smu/{name}/weighted"][()])
+            assert np.array_equal(a[f"smu/{name}/region_one"][()],
+                                  b[f"smu/{name}/region_one"][()])
+
+
+def test_cli_errors_are_one_line_with_exit_code(tmp_path, capsys):
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[catalogue]\npath = 'x.fits'\n[counts]\nn_muu = 3\n")
+    assert main(["check", str(bad)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1
+    assert "unknown key 'n_muu'" in err and "did you mean 'n_mu'" in err
+    assert main(["check", str(tmp_path / "missing.toml")]) == 2
+    assert "does not exist" in capsys.readouterr().err
+
+
+def test_cross_table_check_fit_range_outside_counts(tmp_path):
+    cfg = tmp_path / "c.toml"
+    cfg.write_text("[catalogue]\npath = 'x.fits'\n[counts]\ns_max = 120.0\n")
+    with pytest.raises(ConfigError, match=r"fit range \[fit\] s_min..s_max = 50..150"):
+        api.check(cfg)
