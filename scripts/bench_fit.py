@@ -52,6 +52,18 @@ def main() -> None:
         like.log_posterior(theta)
     per_eval = (time.perf_counter() - t0) / args.repeats * 1e6
 
+    t0 = time.perf_counter()
+    free = build_likelihood(s, d, cov, (0, 2), cosmology=cosmo, z_eff=0.6, linear_power=lp,
+                            settings=FitSettings(sigma_prior_width=2.0))
+    tabulate = time.perf_counter() - t0
+    theta_free = free.start()
+    free.log_posterior(theta_free)
+    t0 = time.perf_counter()
+    for i in range(args.repeats):
+        theta_free[0] = 1.0 + 1e-6 * (i % 7)
+        free.log_posterior(theta_free)
+    per_eval_free = (time.perf_counter() - t0) / args.repeats * 1e6
+
     with tempfile.TemporaryDirectory() as tmp:
         t0 = time.perf_counter()
         res = fit_multipoles(s, d, cov, (0, 2), cosmology=cosmo, z_eff=0.6,
@@ -64,6 +76,9 @@ def main() -> None:
           f"{per_eval / 100:13.2f}")
     print(f"{'full anisotropic fit (incl. profile)':38s} {full:9.1f}s {60:9.0f}s "
           f"{full / 60:13.2f}")
+    print(f"{'evaluation, free damping (no target)':38s} {per_eval_free:8.1f}us {100:8.0f}us "
+          f"{per_eval_free / 100:13.2f}")
+    print(f"{'damping-grid tabulation (no target)':38s} {tabulate:9.1f}s")
     print(f"fit: {conv['n_steps']} steps x {conv['n_walkers']} walkers, converged = "
           f"{conv['converged']}, max tau = {max(conv['tau']):.1f}; "
           f"alpha_par = {res.summary['alpha_par']['median']:.4f}, "

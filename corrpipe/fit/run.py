@@ -92,8 +92,12 @@ def best_fit(like: Likelihood, n_grid: int = 9) -> np.ndarray:
     return res.x if res.fun <= best_val else best
 
 
-def alpha_profile(like: Likelihood, best: np.ndarray, n_points: int) -> dict:
+def alpha_profile(like: Likelihood, best: np.ndarray, n_points: int,
+                  half_width: float | None = None) -> dict:
     """chi^2 profile over alpha_iso, every other parameter re-minimised at each point.
+
+    The grid spans alpha_best +- ``half_width`` (inside the prior), or the whole prior range
+    when ``half_width`` is None.
 
     The minimised quantity is -2 ln posterior (chi^2 plus the Gaussian prior terms). The
     1-sigma interval is where the profile rises by 1 above its minimum (Wilks' theorem for
@@ -123,7 +127,11 @@ def alpha_profile(like: Likelihood, best: np.ndarray, n_points: int) -> dict:
         return theta
 
     f = _objective(like)
-    grid = np.linspace(st.alpha_min, st.alpha_max, n_points)
+    if half_width is None:
+        grid = np.linspace(st.alpha_min, st.alpha_max, n_points)
+    else:
+        grid = np.linspace(max(st.alpha_min, alpha_best - half_width),
+                           min(st.alpha_max, alpha_best + half_width), n_points)
     values = np.empty(n_points)
     x0_best = np.concatenate([[eps_best] if anisotropic else [], best[rest_idx]])
     order = np.argsort(np.abs(grid - alpha_best))
@@ -245,8 +253,13 @@ def fit_multipoles(s, data_vector, covariance, ells: Sequence[int], *, cosmology
     j = int(np.argmax(flat_lp))
     if flat_lp[j] > like.log_posterior(ml):
         ml = chain.chain.reshape(-1, like.n_dim)[j].copy()
-    profile = alpha_profile(like, ml, settings.profile_points) if settings.profile_points \
-        else None
+    profile = None
+    if settings.profile_points:
+        # grid over +- 5 posterior widths of alpha_iso, so the Delta chi^2 = 1 crossings are
+        # resolved by several points
+        alpha_iso = dilations_from_samples(like.names, chain.samples())["alpha"]
+        profile = alpha_profile(like, ml, settings.profile_points,
+                                half_width=5.0 * float(np.std(alpha_iso)))
     return summarise(like, chain, ml, profile, cosmology=cosmology, z_eff=z_eff,
                      covariance_type=covariance_type, variance_factor=variance_factor,
                      name=name)
