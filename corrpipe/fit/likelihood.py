@@ -234,7 +234,12 @@ class Likelihood:
 
     def _amplitude_at_fiducial(self) -> float:
         """Best-fit B at alpha = 1 with the other parameters at their prior centres."""
-        u = self.template_model(self._fixed)
+        return self.best_amplitude(self._fixed)
+
+    def best_amplitude(self, phys: dict) -> float:
+        """B minimising chi^2 with the other physical parameters fixed (the model is linear
+        in B); NaN if the template has no weight in the data."""
+        u = self.template_model(dict(phys, B=1.0))
         denom = float(u @ self._Q @ u)
         return float(u @ self._Q @ self.data) / denom if denom > 0 else float("nan")
 

@@ -53,13 +53,6 @@ def _objective(like: Likelihood):
     return f
 
 
-def _analytic_B(like: Likelihood, phys: dict) -> float:
-    p = dict(phys, B=1.0)
-    u = like.template_model(p)
-    q = like._Q
-    return float(u @ q @ like.data) / max(float(u @ q @ u), 1e-300)
-
-
 def best_fit(like: Likelihood, n_grid: int = 9) -> np.ndarray:
     """Maximum-posterior point: a coarse scan of the dilations (B solved linearly), then
     Nelder-Mead over all sampled parameters (scipy.optimize.minimize)."""
@@ -80,7 +73,9 @@ def best_fit(like: Likelihood, n_grid: int = 9) -> np.ndarray:
     for cand in candidates:
         theta = start.copy()
         theta[:len(cand)] = cand
-        b = _analytic_B(like, like.physical(theta))
+        b = like.best_amplitude(like.physical(theta))
+        if not np.isfinite(b):
+            continue
         theta[i_b] = np.clip(b, p_b.low * 1.001, p_b.high * 0.999)
         val = f(theta)
         if val < best_val:

@@ -229,6 +229,11 @@ class LinearPower:
         """Power at ``k`` (h/Mpc) in (Mpc/h)^3, log-log interpolated, power laws beyond the grid."""
         return _loglog(self.k, self.power, k)
 
+    @property
+    def wiggle(self) -> tuple[np.ndarray, np.ndarray]:
+        """(k [h/Mpc], P [(Mpc/h)^3]) table of the power with wiggles."""
+        return self.k, self.power
+
     def nowiggle(self, k) -> np.ndarray:
         """No-wiggle power at ``k`` (h/Mpc) in (Mpc/h)^3."""
         return _loglog(self.k, self.power_nowiggle, k)
