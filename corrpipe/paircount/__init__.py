@@ -19,6 +19,13 @@ from corrpipe.paircount.engine import (
     prepare_count,
     reduce_partials,
 )
+from corrpipe.paircount.randoms_rr import (
+    analytic_box_rr,
+    bin_volumes,
+    combine_split_counts,
+    split_indices,
+    split_random_rr,
+)
 from corrpipe.paircount.result import PairCounts
 
 __all__ = [
@@ -29,9 +36,14 @@ __all__ = [
     "PartialCounts",
     "PreparedCount",
     "WorkUnit",
+    "analytic_box_rr",
+    "bin_volumes",
+    "combine_split_counts",
     "count_pairs",
     "count_units",
     "plan_units",
     "prepare_count",
     "reduce_partials",
+    "split_indices",
+    "split_random_rr",
 ]
