@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from scipy.integrate import trapezoid
 from scipy.ndimage import gaussian_filter1d
 
 from corrpipe.errors import InputError
@@ -157,7 +158,7 @@ def tophat_sigma(k, pk, radius: float) -> float:
     w = np.where(x > 1e-4, 3.0 * (np.sin(x) - x * np.cos(x)) / np.maximum(x, 1e-4) ** 3,
                  1.0 - x * x / 10.0)
     integrand = k**3 * pk * w * w / (2.0 * np.pi**2)  # d ln k measure
-    return float(np.sqrt(np.trapezoid(integrand, np.log(k))))
+    return float(np.sqrt(trapezoid(integrand, np.log(k))))
 
 
 def smooth_nowiggle(k, pk, reference_nowiggle, width_ln_k: float = 0.25) -> np.ndarray:
