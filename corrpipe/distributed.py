@@ -112,8 +112,14 @@ class EngineSettings:
                                   "threads engine; 0 = 4 per worker thread (equal values give "
                                   "bitwise equal counts on both engines)", low=0, high=100000)
 
+    def __post_init__(self) -> None:
+        for name, allowed in (("kind", ENGINE_KINDS), ("cluster", CLUSTER_KINDS)):
+            if getattr(self, name) not in allowed:
+                raise ConfigError(f"[engine] {name} = {getattr(self, name)!r} is not known; "
+                                  f"choose one of {', '.join(map(repr, allowed))}")
+
     def validate(self) -> None:
-        """Cross-field checks (called by the config loader)."""
+        """Cross-field checks (run by the config loader and by :func:`open_engine`)."""
         if self.scheduler and self.scheduler_file:
             raise ConfigError("gives both 'scheduler' and 'scheduler_file'; keep one of them "
                               "(the address of a running scheduler or its scheduler file)")
@@ -146,12 +152,10 @@ def open_engine(settings: EngineSettings) -> Iterator[Any]:
         Dask is not installed, the scheduler cannot be reached within ``connect_timeout``, the
         scheduler file is missing, or no worker joins within ``worker_timeout``.
     """
+    settings.validate()
     if settings.kind == "threads":
         yield None
         return
-    if settings.kind != "dask":
-        raise ConfigError(f"[engine] kind = {settings.kind!r} is not known; choose one of "
-                          f"{', '.join(map(repr, ENGINE_KINDS))}")
     try:
         import distributed
     except ImportError as exc:
@@ -166,7 +170,7 @@ def open_engine(settings: EngineSettings) -> Iterator[Any]:
             client = _connect(distributed, settings.scheduler, settings,
                               f"[engine] scheduler = {settings.scheduler!r}")
         elif settings.scheduler_file:
-            path = Path(settings.scheduler_file)
+            path = Path(settings.scheduler_file).expanduser()
             if not path.is_file():
                 raise ConfigError(
                     f"[engine] scheduler_file = {str(path)!r} does not exist; start the "
@@ -180,6 +184,8 @@ def open_engine(settings: EngineSettings) -> Iterator[Any]:
             client = _connect(distributed, cluster, settings, f"the {settings.cluster} cluster")
         stack.callback(client.close)
         _wait_for_workers(client, settings, cluster)
+        _log.info("Dask engine: scheduler %s, %d workers, dashboard %s", client.scheduler.address,
+                  len(client.scheduler_info()["workers"]), client.dashboard_link)
         yield client
 
 
