@@ -35,7 +35,8 @@ class FitSettings:
 
     analysis: str = setting("anisotropic", "fit alpha_par and alpha_perp to the multipoles, or "
                             "one alpha to the monopole", choices=("anisotropic", "isotropic"))
-    ells: tuple[int, ...] = setting((0, 2), "multipoles fitted (an isotropic fit uses the monopole only)",
+    ells: tuple[int, ...] = setting((0, 2), "multipoles fitted (an isotropic fit uses the "
+                                    "monopole only)",
                                     choices=(0, 2, 4))
     s_min: float = setting(50.0, "smallest separation fitted", unit="Mpc/h", low=0.0,
                            high=500.0, low_open=True)

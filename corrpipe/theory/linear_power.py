@@ -1,4 +1,4 @@
-"""Linear matter power spectrum: Eisenstein & Hu (1998) or a tabulated file, with its no-wiggle part.
+"""Linear matter power spectrum (Eisenstein & Hu 1998, or a tabulated file) and its no-wiggle part.
 
 Wavenumbers are in h/Mpc and powers in (Mpc/h)^3 everywhere in this module's public API; the
 EH98 formulae work internally in 1/Mpc (no factors of h), as in the paper.

@@ -35,8 +35,8 @@ def _lp() -> LinearPower:
 
 def _realistic(ells, a_par, a_perp):
     """Noise-free multipoles with a covariance giving BOSS DR12-like precision (about 2.4 %
-    radial and 1.3 % transverse; Ross et al. 2017 quote 1.8 % and 1.1 % combined, REFERENCES §7): diagonal errors ~1/s,
-    quadrupole twice as noisy, neighbouring bins correlated over ~8 Mpc/h, 20 % monopole-
+    radial and 1.3 % transverse; Ross et al. 2017 quote 1.8 % and 1.1 % combined, REFERENCES
+    §7): diagonal errors ~1/s, quadrupole twice as noisy, neighbouring bins correlated over ~8 Mpc/h, 20 % monopole-
     quadrupole correlation (shapes are common practice; the amplitudes are invented)."""
     tpl = BAOTemplate(_lp())
     m = tpl.multipoles(S, a_par, a_perp, ells, B=1.3, beta=0.4, sigma_par=10.0,
