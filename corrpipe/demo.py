@@ -1,0 +1,233 @@
+"""The built-in demo survey: an invented redshift survey with a known, injected dilation.
+
+The *Halcyon Fen Wide Redshift Survey* is fictional: a made-up 4-metre spectroscopic telescope
+at a made-up site observed "ember galaxies" (an invented tracer: bright, red, strongly
+clustered, bias about 1.9) over two RA/Dec fields of about 1150 deg^2 together (about 60k galaxies), between
+z = 0.2 and 0.65, with a number density that peaks near z = 0.45. The catalogue is a
+Zel'dovich mock made in a *true* cosmology (Omega_m = 0.27, h = 0.70) that differs from the
+analysis' fiducial one (the ``planck2018`` preset), so the pipeline should recover
+alpha_par ~ 0.97 and alpha_perp ~ 0.96 rather than 1. Nothing here describes a real survey.
+
+:func:`write_demo_inputs` writes the data and random catalogues (FITS), the truth (JSON) and
+a pipeline config (TOML) into a folder; ``corrpipe demo`` runs the pipeline on them.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from corrpipe.errors import InputError
+from corrpipe.mocks.dilation import Dilation, expected_dilation
+from corrpipe.mocks.make import (effective_redshift, footprint_of, make_survey_mock, nz_of,
+                                 true_cosmology)
+from corrpipe.mocks.settings import MockSettings
+from corrpipe.mocks.survey import survey_randoms, write_sky_catalogue
+
+__all__ = ["SURVEY_NAME", "TRACER", "SCALES", "DemoInputs", "demo_settings",
+           "write_demo_inputs", "demo_config_text"]
+
+SURVEY_NAME = "Halcyon Fen Wide Redshift Survey"
+TRACER = "ember galaxies"
+
+_OMEGA_B_H2 = 0.02242  # keep the baryon density of the fiducial preset in the true cosmology
+_TRUE_H, _TRUE_OMEGA_M = 0.70, 0.27
+
+#: Sizes of the demo. "demo" is what ``corrpipe demo`` runs (about 60k galaxies); "test" is a
+#: smaller survey for end-to-end tests (about 34k); "tiny" only checks the plumbing (too
+#: small for a BAO detection); "large" is a bigger one for serious validation runs.
+SCALES = {
+    "tiny": dict(box_size=1000.0, n_mesh=128, footprint=((20.0, 50.0, 10.0, 30.0),),
+                 z_min=0.15, z_max=0.33, peak=1.6e-4),
+    "test": dict(box_size=1450.0, n_mesh=192, footprint=((20.0, 56.0, 10.0, 38.0),),
+                 z_min=0.25, z_max=0.55, peak=1.6e-4),
+    "demo": dict(box_size=1760.0, n_mesh=256, footprint=((18.0, 58.0, 10.0, 36.0),
+                                                         (62.0, 76.0, 14.0, 30.0)),
+                 z_min=0.2, z_max=0.65, peak=1.6e-4),
+    "large": dict(box_size=1880.0, n_mesh=384, footprint=((10.0, 80.0, 5.0, 50.0),),
+                  z_min=0.2, z_max=0.7, peak=2.0e-4),
+}
+
+
+def _nz_table(z_min: float, z_max: float, peak: float):
+    """The ember-galaxy n(z): a smooth bump peaking at z = 0.45, (h/Mpc)^3."""
+    z = np.linspace(z_min, z_max, 19)
+    n = peak * (0.35 + 0.65 * np.exp(-0.5 * ((z - 0.45) / 0.11) ** 2))
+    return tuple(float(v) for v in z), tuple(float(v) for v in n)
+
+
+def demo_settings(scale: str = "demo", seed: int = 7) -> MockSettings:
+    """The mock definition of the demo survey at one of :data:`SCALES`."""
+    if scale not in SCALES:
+        raise InputError(f"unknown demo scale {scale!r}; choose one of {sorted(SCALES)}")
+    p = SCALES[scale]
+    z_nodes, n_nodes = _nz_table(p["z_min"], p["z_max"], p["peak"])
+    return MockSettings(kind="zeldovich", geometry="survey", seed=int(seed),
+                        box_size=p["box_size"], n_mesh=p["n_mesh"], nbar=p["peak"],
+                        bias=1.9, redshift=0.45, true_h=_TRUE_H, true_omega_m=_TRUE_OMEGA_M,
+                        true_omega_b=_OMEGA_B_H2 / _TRUE_H**2, observer=(0.0, 0.0, 0.0),
+                        z_min=p["z_min"], z_max=p["z_max"], footprint=p["footprint"],
+                        nz_redshifts=z_nodes, nz_densities=n_nodes, randoms_factor=8.0,
+                        format="fits", name="halcyon_fen_wide")
+
+
+@dataclass(frozen=True)
+class DemoInputs:
+    """Files and truth of a written demo survey.
+
+    Attributes
+    ----------
+    folder : Path
+        Where everything was written.
+    data, randoms : Path
+        Data and random catalogues (FITS; columns RA, DEC, Z, WEIGHT).
+    config : Path
+        Pipeline config (TOML) reading them; its text is ``config_text``.
+    truth_file : Path
+        JSON with the truth, the survey description and the mock settings.
+    truth : Dilation
+        Injected dilation at the sample's effective redshift.
+    n_galaxies, n_randoms : int
+        Catalogue sizes.
+    area_deg2 : float
+        Footprint area.
+    seconds : float
+        Time taken to make the inputs.
+    """
+
+    folder: Path
+    data: Path
+    randoms: Path
+    config: Path
+    config_text: str
+    truth_file: Path
+    truth: Dilation
+    n_galaxies: int
+    n_randoms: int
+    area_deg2: float
+    seconds: float
+    meta: dict = field(default_factory=dict)
+
+
+def demo_config_text(settings: MockSettings, data_name: str, randoms_name: str,
+                     output: str = "results", seed: int = 7) -> str:
+    """Pipeline config (TOML) for the demo catalogues, paths relative to the config file."""
+    boxes = ", ".join("[" + ", ".join(f"{v:g}" for v in b) + "]" for b in settings.footprint)
+    return f"""# {SURVEY_NAME}: {TRACER}, a demo survey made by corrpipe (fictional).
+# Truth: see truth.json beside this file. Fiducial cosmology: planck2018 preset.
+
+[run]
+output = "{output}"
+seed = {int(seed)}
+
+[cosmology]
+preset = "planck2018"
+
+[catalogue]
+path = "{data_name}"
+kind = "sky"
+weight_columns = ["WEIGHT"]
+z_min = {settings.z_min:g}
+z_max = {settings.z_max:g}
+name = "ember galaxies"
+
+[footprint]
+kind = "boxes"
+boxes = [{boxes}]
+
+[randoms]
+file = "{randoms_name}"
+
+[weights]
+fkp = true
+fkp_p0 = 10000.0
+
+[counts]
+s_min = 0.0
+s_max = 160.0
+n_s = 32
+n_mu = 40
+
+[covariance]
+kind = "jackknife"
+regions = "kmeans"
+n_regions = 64
+
+[fit]
+analysis = "anisotropic"
+s_min = 50.0
+s_max = 150.0
+"""
+
+
+def write_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
+                      progress: bool = True, overwrite: bool = True) -> DemoInputs:
+    """Make the demo survey and write its catalogues, truth and pipeline config.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+        Folder to write into (created).
+    seed : int
+        Seed of the mock (the same seed gives the same files).
+    scale : {"test", "demo", "large"}
+        Survey size (:data:`SCALES`).
+    progress : bool
+        Progress bars while drawing the mock.
+    overwrite : bool
+        Replace files from an earlier call.
+
+    Returns
+    -------
+    DemoInputs
+    """
+    from corrpipe.cosmology import preset
+
+    start = time.perf_counter()
+    folder = Path(out_dir)
+    folder.mkdir(parents=True, exist_ok=True)
+    settings = demo_settings(scale, seed)
+    settings.validate()
+    cosmo = true_cosmology(settings)
+    fid = preset("planck2018")
+    sky = make_survey_mock(settings, int(seed), cosmology=cosmo, progress=progress)
+    if len(sky) == 0:
+        raise InputError("the demo survey came out empty; this is a bug in the demo settings")
+    z_eff = effective_redshift(sky.z)
+    truth = expected_dilation(cosmo, fid, z_eff)
+    footprint = footprint_of(settings)
+    n_rand = int(round(settings.randoms_factor * len(sky)))
+    ra, dec, zr = survey_randoms(footprint, cosmo, settings.z_min, settings.z_max, n_rand,
+                                 nz=nz_of(settings), seed=np.random.default_rng([seed, 2]))
+    meta = {"survey": SURVEY_NAME, "tracer": TRACER, "seed": int(seed), "scale": scale,
+            "z_eff": z_eff, "alpha_par": truth.alpha_par, "alpha_perp": truth.alpha_perp,
+            "alpha_iso": truth.alpha_iso}
+    data_path = write_sky_catalogue(folder / f"{settings.name}.fits", sky.ra, sky.dec, sky.z,
+                                    sky.weights, meta=meta, overwrite=overwrite,
+                                    extra={"Z_COSMO": sky.z_cosmo})
+    randoms_path = write_sky_catalogue(folder / f"{settings.name}_randoms.fits", ra, dec, zr,
+                                       meta={"survey": SURVEY_NAME, "seed": int(seed)},
+                                       overwrite=overwrite)
+    text = demo_config_text(settings, data_path.name, randoms_path.name, seed=seed)
+    config_path = folder / "demo.toml"
+    config_path.write_text(text)
+    truth_doc = {"survey": SURVEY_NAME, "tracer": TRACER, "fictional": True,
+                 "scale": scale, "seed": int(seed), "n_galaxies": len(sky),
+                 "n_randoms": n_rand, "area_deg2": footprint.area_deg2(),
+                 "truth": truth.as_dict(),
+                 "true_cosmology": dataclasses.asdict(cosmo),
+                 "fiducial_cosmology": dataclasses.asdict(fid),
+                 "mock": {k: (list(v) if isinstance(v, tuple) else v)
+                          for k, v in dataclasses.asdict(settings).items()}}
+    truth_path = folder / "truth.json"
+    truth_path.write_text(json.dumps(truth_doc, indent=2, default=float))
+    return DemoInputs(folder=folder, data=Path(data_path), randoms=Path(randoms_path),
+                      config=config_path, config_text=text, truth_file=truth_path,
+                      truth=truth, n_galaxies=len(sky), n_randoms=n_rand,
+                      area_deg2=footprint.area_deg2(),
+                      seconds=time.perf_counter() - start, meta=sky.meta)
