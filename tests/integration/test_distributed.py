@@ -288,3 +288,17 @@ def test_slurm_example_config_engine_table_is_valid():
     table = tomllib.loads(path.read_text())["engine"]
     engine = validate_section(EngineSettings, table, "engine", str(path), path.parent)
     assert (engine.kind, engine.cluster, engine.n_workers) == ("dask", "slurm", 16)
+
+
+def test_batch_system_cluster_without_jobqueue_says_what_to_install():
+    # common practice: a missing optional package is named with its install command
+    try:
+        import dask_jobqueue  # noqa: F401
+    except ImportError:
+        pass
+    else:
+        pytest.skip("dask-jobqueue is installed; this checks the message when it is not")
+    settings = EngineSettings(kind="dask", cluster="slurm", n_workers=2)
+    with pytest.raises(ConfigError, match="pip install dask-jobqueue"):
+        with open_engine(settings):
+            pass
