@@ -287,9 +287,9 @@ def config_reference() -> str:
                 continue
             info = setting_info(f)
             if f.default is not dataclasses.MISSING:
-                default = repr(_to_plain(f.default))
+                default = _toml_value(_to_plain(f.default))
             elif f.default_factory is not dataclasses.MISSING:
-                default = repr(_to_plain(f.default_factory()))
+                default = _toml_value(_to_plain(f.default_factory()))
             else:
                 default = "(required)"
             extra = []
@@ -307,6 +307,21 @@ def config_reference() -> str:
 
 
 # ----------------------------------------------------------------------------- internals
+
+
+def _toml_value(value: Any) -> str:
+    """A default value written as TOML (unset optional values as ``(unset)``)."""
+    if value is None:
+        return "(unset)"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{" + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + "}"
+    return repr(value)
 
 
 def _suggest(word: str, options: list[str]) -> str:

@@ -457,6 +457,8 @@ class CovarianceSettings(RegionSettings):
                            "empty = linear theory of the fiducial cosmology", path=True)
     beta: float = setting(0.0, "Kaiser factor f/b of the analytic covariance", low=0.0,
                           high=5.0)
+    bias: float = setting(2.0, "linear bias b: the analytic covariance uses b^2 P_lin(k) when "
+                          "no pk_file is given", low=0.1, high=20.0)
     k_max: float = setting(2.0, "upper k of the analytic covariance integral", unit="h/Mpc",
                            low=0.0, low_open=True)
     n_params: int = setting(3, "number of fitted parameters, for the Percival factors", low=1)

@@ -653,9 +653,10 @@ def _analytic_covariance(ctx: StageContext):
         table = np.loadtxt(c.pk_file)
         pk = (table[:, 0], table[:, 1])
     else:
-        # galaxy power: linear matter power times b^2 with b from the fit's B prior centre
+        # galaxy power: linear matter power at the box redshift times b^2
         lp = build_linear_power(_cosmology(a), float(a.catalogue.box_redshift), a.fit)
-        pk = lp.wiggle
+        bias2 = c.bias**2
+        pk = lambda k: bias2 * lp(k)  # noqa: E731
     nbar = float(data.size) / float(data.box_size) ** 3
     return cv.gaussian_box_covariance(pk, nbar, float(data.box_size) ** 3, s_edges,
                                       a.estimate.ells, beta=c.beta, k_max=c.k_max)
