@@ -345,9 +345,9 @@ n_regions, raw, progress, progress_path
         numba threads of the threads engine (default: all); ignored by the Dask engine, whose
         tasks use ``threads_per_worker``.
     on_partial : callable, optional
-        Called on the client with each :class:`PartialCounts` after it has been saved to the
-        sidecar (e.g. for logging); an exception it raises aborts the count, keeping what was
-        saved.
+        Dask engine only (``count_pairs`` has no such hook): called on the client with each
+        :class:`PartialCounts` after it has been saved to the sidecar (e.g. for logging); an
+        exception it raises aborts the count, keeping what was saved.
 
     Returns
     -------
