@@ -23,7 +23,7 @@ import numpy as np
 import scipy.fft
 
 from corrpipe.errors import InputError
-from corrpipe.mesh_kernels import paint_kernel, read_kernel
+from corrpipe import mesh_kernels
 
 __all__ = [
     "SCHEMES",
@@ -55,6 +55,10 @@ SCHEMES = {"ngp": 1, "cic": 2, "tsc": 3}
 
 def _workers(workers: int | None) -> int:
     return int(workers) if workers is not None else max(1, os.cpu_count() or 1)
+
+
+_PAINT = {1: mesh_kernels.paint_ngp, 2: mesh_kernels.paint_cic, 3: mesh_kernels.paint_tsc}
+_READ = {1: mesh_kernels.read_ngp, 2: mesh_kernels.read_cic, 3: mesh_kernels.read_tsc}
 
 
 def _order(scheme: str) -> int:
@@ -152,7 +156,7 @@ def paint(
             raise InputError(f"weights contain {int(np.count_nonzero(~np.isfinite(w)))} NaN "
                              "or infinite values")
     mesh = np.zeros((int(n_mesh),) * 3, dtype=dtype)
-    paint_kernel(cells, w, order, mesh)
+    _PAINT[order](cells, w, mesh)
     return mesh
 
 
@@ -187,7 +191,7 @@ def interpolate(
     order = _order(scheme)
     cells = _cells(positions, box_size, n, origin)
     out = np.empty(cells.shape[0], dtype=np.float64)
-    read_kernel(cells, order, np.ascontiguousarray(field), out)
+    _READ[order](cells, np.ascontiguousarray(field), out)
     return out
 
 
