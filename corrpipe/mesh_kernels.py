@@ -13,7 +13,43 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["paint_ngp", "paint_cic", "paint_tsc", "read_ngp", "read_cic", "read_tsc"]
+__all__ = ["axis_weights", "paint_ngp", "paint_cic", "paint_tsc", "read_ngp", "read_cic",
+           "read_tsc"]
+
+
+@njit(cache=True, inline="always")
+def axis_weights(u, order, idx, wgt):
+    """Fill ``idx`` (int64, 3) and ``wgt`` (float64, 3) for one coordinate ``u`` (cells).
+
+    ``order`` is 1 (NGP), 2 (CIC) or 3 (TSC); unused slots get weight 0. Indices are not
+    wrapped. For kernels that take the scheme as an argument (e.g. reconstruction's).
+    """
+    if order == 1:
+        i = np.floor(u + 0.5)
+        idx[0] = np.int64(i)
+        wgt[0] = 1.0
+        idx[1] = idx[0]
+        wgt[1] = 0.0
+        idx[2] = idx[0]
+        wgt[2] = 0.0
+    elif order == 2:
+        i = np.floor(u)
+        d = u - i
+        idx[0] = np.int64(i)
+        wgt[0] = 1.0 - d
+        idx[1] = idx[0] + 1
+        wgt[1] = d
+        idx[2] = idx[0]
+        wgt[2] = 0.0
+    else:
+        i = np.floor(u + 0.5)
+        d = u - i
+        idx[0] = np.int64(i) - 1
+        wgt[0] = 0.5 * (0.5 - d) ** 2
+        idx[1] = np.int64(i)
+        wgt[1] = 0.75 - d * d
+        idx[2] = np.int64(i) + 1
+        wgt[2] = 0.5 * (0.5 + d) ** 2
 
 
 @njit(cache=True)
