@@ -23,6 +23,7 @@ from tqdm.auto import tqdm
 
 from corrpipe import mesh
 from corrpipe.errors import InputError
+from corrpipe.mocks.settings import MIN_NYQUIST_K
 from corrpipe.mocks.fields import (gaussian_field_fourier, lognormal_gaussian_power,
                                    mesh_variance, power_on_mesh, white_noise_fourier)
 
@@ -37,9 +38,6 @@ __all__ = [
     "MIN_NYQUIST_K",
 ]
 
-#: Smallest Nyquist wavenumber (h/Mpc) a mock mesh may have: BAO fits use modes up to
-#: k ~ 0.2-0.3 h/Mpc and separations down to ~30 Mpc/h (common practice).
-MIN_NYQUIST_K = 0.2
 
 
 @dataclass(frozen=True)

@@ -2,12 +2,17 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from corrpipe.errors import ConfigError
 from corrpipe.settings import setting
 
-__all__ = ["MockSettings"]
+__all__ = ["MockSettings", "MIN_NYQUIST_K"]
+
+#: Smallest Nyquist wavenumber (h/Mpc) a mock mesh may have: BAO fits use modes up to
+#: k ~ 0.2-0.3 h/Mpc and separations down to ~30 Mpc/h (common practice).
+MIN_NYQUIST_K = 0.2
 
 
 @dataclass(frozen=True)
@@ -109,3 +114,11 @@ class MockSettings:
                                   f"got {list(self.observer)}")
         if self.n_mesh % 2:
             raise ConfigError(f"mock: n_mesh = {self.n_mesh} must be even (FFT layout)")
+        k_nyquist = math.pi * self.n_mesh / self.box_size
+        if k_nyquist < MIN_NYQUIST_K:
+            need = math.ceil(MIN_NYQUIST_K * self.box_size / math.pi)
+            need += need % 2
+            raise ConfigError(f"mock: n_mesh = {self.n_mesh} is too coarse for box_size = "
+                              f"{self.box_size:g} Mpc/h (cells of "
+                              f"{self.box_size / self.n_mesh:.1f} Mpc/h, Nyquist "
+                              f"{k_nyquist:.3f} h/Mpc < {MIN_NYQUIST_K}); use n_mesh >= {need}")

@@ -318,3 +318,20 @@ def test_demo_inputs_are_a_loadable_survey_with_known_truth(tmp_path):
     # same seed, same catalogue (common practice: reproducible mocks)
     again = write_demo_inputs(tmp_path / "again", seed=3, scale="tiny", progress=False)
     np.testing.assert_array_equal(Table.read(again.data)["Z"], Table.read(d.data)["Z"])
+
+
+@pytest.mark.parametrize("values, match", [
+    (dict(nbar=-1e-4), "nbar"),
+    (dict(bias=0.0), "bias"),
+    (dict(n_mesh=16, box_size=2000.0), "too coarse"),
+    (dict(kind="gaussian"), "kind"),
+    (dict(geometry="survey", z_min=0.5, z_max=0.3), "z_min"),
+    (dict(footprint=[[1.0, 2.0, 3.0]]), "footprint"),
+])
+def test_mock_table_bad_values_are_config_errors(values, match, tmp_path):
+    # common practice: the [mock] table is checked by the config loader before any work,
+    # and the message names the key
+    from corrpipe.config import validate_section
+
+    with pytest.raises(ConfigError, match=match):
+        validate_section(MockSettings, values, "mock", "mocks.toml", tmp_path)
