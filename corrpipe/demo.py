@@ -30,7 +30,7 @@ from corrpipe.mocks.settings import MockSettings
 from corrpipe.mocks.survey import survey_randoms, write_sky_catalogue
 
 __all__ = ["SURVEY_NAME", "TRACER", "SCALES", "DemoInputs", "demo_settings",
-           "write_demo_inputs", "demo_config_text"]
+           "write_demo_inputs", "demo_config_text", "truth_vs_recovered"]
 
 SURVEY_NAME = "Halcyon Fen Wide Redshift Survey"
 TRACER = "ember galaxies"
@@ -231,3 +231,34 @@ def write_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
                       truth=truth, n_galaxies=len(sky), n_randoms=n_rand,
                       area_deg2=footprint.area_deg2(),
                       seconds=time.perf_counter() - start, meta=sky.meta)
+
+
+def truth_vs_recovered(truth: Dilation, summary: dict) -> str:
+    """Table of injected vs recovered dilations, with the offset in units of the error.
+
+    Parameters
+    ----------
+    truth : Dilation
+        What was injected.
+    summary : dict
+        The ``"summary"`` mapping of ``summary.json``: per parameter ``median``, ``p16``,
+        ``p84``.
+
+    Returns
+    -------
+    str
+        One line per parameter found in ``summary`` (alpha_par, alpha_perp, alpha).
+    """
+    lines = [f"{SURVEY_NAME} (fictional), z_eff = {truth.z_eff:.3f}",
+             f"{'parameter':>11} {'truth':>8} {'recovered':>10} {'68% interval':>19} "
+             f"{'offset':>8}"]
+    for name, value in (("alpha_par", truth.alpha_par), ("alpha_perp", truth.alpha_perp),
+                        ("alpha", truth.alpha_iso)):
+        if name not in summary:
+            continue
+        s = summary[name]
+        sigma = 0.5 * (float(s["p84"]) - float(s["p16"]))
+        pull = (float(s["median"]) - value) / sigma if sigma > 0 else float("nan")
+        lines.append(f"{name:>11} {value:8.4f} {float(s['median']):10.4f} "
+                     f"[{float(s['p16']):.4f}, {float(s['p84']):.4f}] {pull:+7.2f}σ")
+    return "\n".join(lines)

@@ -335,3 +335,15 @@ def test_mock_table_bad_values_are_config_errors(values, match, tmp_path):
 
     with pytest.raises(ConfigError, match=match):
         validate_section(MockSettings, values, "mock", "mocks.toml", tmp_path)
+
+
+def test_truth_vs_recovered_text():
+    # common practice: offset in units of half the 16-84% width
+    from corrpipe.demo import truth_vs_recovered
+    from corrpipe.mocks import Dilation
+
+    truth = Dilation(alpha_par=1.0, alpha_perp=0.96, alpha_iso=0.9731, z_eff=0.48)
+    summary = {"alpha_par": {"median": 1.1, "p16": 1.0, "p84": 1.2},
+               "alpha_perp": {"median": 0.96, "p16": 0.94, "p84": 0.98}}
+    text = truth_vs_recovered(truth, summary)
+    assert "+1.00σ" in text and "+0.00σ" in text and "alpha " not in text
