@@ -71,8 +71,9 @@ class MockSettings:
                              choices=("float64", "float32"))
     observer: tuple[float, float, float] = setting((0.0, 0.0, 0.0), "survey mode: observer "
                                                    "position in the box frame", unit="Mpc/h")
-    z_min: float = setting(0.2, "survey mode: lowest observed redshift", low=0.0)
-    z_max: float = setting(0.6, "survey mode: highest observed redshift (exclusive)",
+    z_min: float = setting(0.15, "survey mode: lowest observed redshift", low=0.0)
+    z_max: float = setting(0.3, "survey mode: highest observed redshift (exclusive; the "
+                           "default shell fits the default box seen from its corner)",
                            low=0.0, low_open=True, high=10.0)
     footprint: tuple[tuple[float, float, float, float], ...] = setting(
         ((10.0, 80.0, 5.0, 45.0),), "survey mode: RA/Dec boxes "
