@@ -219,7 +219,8 @@ def lognormal_box(
     los_axis : int
         Axis of alpha_par and default line of sight.
     dtype : numpy dtype
-        Mesh precision (float32 halves memory).
+        Mesh precision (float32 halves memory). The white noise is drawn in this precision,
+        so a seed gives the same mock only at the same precision.
     progress : bool
         Show a progress bar.
 
@@ -368,7 +369,7 @@ def zeldovich_box(
         (0: the raw mesh field). Smoothing lowers the field rms, so larger biases can be
         reached, at the price of a scale-dependent bias exp(-k^2 R^2 / 2).
     dtype : numpy dtype
-        Mesh precision.
+        Mesh precision (a seed gives the same mock only at the same precision).
     progress : bool
         Show a progress bar.
 
