@@ -119,6 +119,7 @@ def test_periodic_cross_count_identical_and_matches_kdtree(engine):
     assert np.array_equal(remote.raw, np.diff(cumulative))
 
 
+@pytest.mark.slow
 def test_killed_worker_still_finishes_with_identical_counts(engine, survey, reference, tmp_path):
     # reference: threads engine; Dask reschedules the tasks of a lost worker (its nanny
     # restarts it) and the scattered catalogue survives on the other worker
@@ -146,6 +147,7 @@ def test_killed_worker_still_finishes_with_identical_counts(engine, survey, refe
     client.wait_for_workers(2, timeout=30)  # the nanny brings the worker back for later tests
 
 
+@pytest.mark.slow
 def test_losing_every_worker_rescatters_and_finishes_identical(engine, survey, reference):
     # reference: threads engine; scattered data has no lineage in Dask (distributed docs,
     # "Data Locality"/scatter), so the engine must scatter the catalogue again itself
@@ -169,6 +171,7 @@ def test_losing_every_worker_rescatters_and_finishes_identical(engine, survey, r
     client.wait_for_workers(2, timeout=30)
 
 
+@pytest.mark.slow
 def test_aborted_run_resumes_from_sidecar(engine, survey, reference, tmp_path):
     # reference: threads engine; the resumed run must redo only the batches not saved
     settings, client = engine
