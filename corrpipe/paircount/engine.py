@@ -167,6 +167,8 @@ def _check_positions(positions, name: str) -> np.ndarray:
             f"{name} must have shape (N, 3) (x, y, z in Mpc/h), got shape {arr.shape}; "
             "stack the coordinates with numpy.column_stack"
         )
+    if np.isfinite(np.sum(arr)):  # cheap check without an (N, 3) temporary
+        return arr
     bad = ~np.all(np.isfinite(arr), axis=1)
     if bad.any():
         first = int(np.flatnonzero(bad)[0])
@@ -186,6 +188,8 @@ def _check_weights(weights, n: int, name: str) -> np.ndarray:
         raise InputError(f"{name} must be a numeric array of length {n}") from exc
     if arr.shape != (n,):
         raise InputError(f"{name} must have shape ({n},) to match the positions, got {arr.shape}")
+    if np.isfinite(np.sum(arr)):
+        return arr
     bad = ~np.isfinite(arr)
     if bad.any():
         raise InputError(
@@ -232,7 +236,7 @@ def _sort_catalogue(pos, weights, regions, grid: Grid, n_regions: int, keep_orde
     else:
         rsw = rsw2 = None
     return _Sorted(xs, ys, zs, ws, rs, order, start, n, float(np.sum(weights)),
-                   float(np.sum(weights * weights)), rsw, rsw2)
+                   float(np.dot(weights, weights)), rsw, rsw2)
 
 
 def _auto_refine(n_points: int, volume: float, radius: float) -> int:
@@ -392,6 +396,8 @@ def prepare_count(positions1, weights1=None, positions2=None, weights2=None, *,
         abs_mu=not mu_signed, inv_width_b=float(1.0 / widths_b[0]),
         pi_lo=pi_lo, pi_hi=pi_hi,
         max_occupancy=int(np.diff(cat2.start).max(initial=0)) + 1,
+        # slack of the point-to-cell pruning, far above the rounding of cell assignment
+        tol=1e-9 * float(np.max(np.abs(grid.origin)) + np.max(grid.side * grid.shape)),
     )
     return PreparedCount(binning=binning, los=los, auto=auto, box_size=box_size,
                          n_regions=n_regions, raw=bool(raw), grid=grid, cat1=cat1, cat2=cat2,
@@ -437,7 +443,8 @@ def count_units(prepared: PreparedCount, unit_ids) -> PartialCounts:
         a["shape"], a["offsets"], a["kinds"], a["periodic"], a["box"], a["mode"], a["los"],
         a["orient"], a["q_lo"], a["q_hi"], a["lut"], a["q0"], a["lut_scale"], a["e2"],
         a["edges_b"], a["uniform_b"], a["abs_mu"], a["inv_width_b"], a["pi_lo"], a["pi_hi"],
-        hist_w, hist_raw, both, one, prepared.raw, nreg > 0, a["max_occupancy"])
+        hist_w, hist_raw, both, one, prepared.raw, nreg > 0, a["max_occupancy"],
+        prepared.grid.origin, prepared.grid.side, a["tol"])
     weighted = _ordered_sum(hist_w, nflat)
     raw = _ordered_sum(hist_raw, nflat, np.int64) if prepared.raw else None
     region_both = _ordered_sum(both, (nreg, nflat)) if nreg else None

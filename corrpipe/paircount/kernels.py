@@ -125,45 +125,35 @@ def cell_pair_costs(start1, start2, shape, offsets, kinds, periodic):
 
 
 @njit(cache=True, inline="always")
-def _first_bin(q, q0, lut, lut_scale, e2):
-    """Bin of a squared separation ``q`` on squared edges ``e2`` (table guess, exact correction)."""
-    c = int((q - q0) * lut_scale)
-    c = min(max(c, 0), lut.shape[0] - 1)
-    k = lut[c]
-    while k > 0 and q < e2[k]:
-        k -= 1
-    while q >= e2[k + 1]:
-        k += 1
-    return k
-
-
-@njit(cache=True, inline="always")
-def _second_bin(t, edges, uniform, inv_width):
-    """Bin of ``t`` on ``edges`` (last edge inclusive); -1 when outside."""
-    n = edges.shape[0] - 1
-    if t < edges[0] or t > edges[n]:
-        return -1
-    if uniform:
-        k = int((t - edges[0]) * inv_width)
-    else:
-        k = np.searchsorted(edges, t, side="right") - 1
-    k = min(max(k, 0), n - 1)
-    while k > 0 and t < edges[k]:
-        k -= 1
-    while k < n - 1 and t >= edges[k + 1]:
-        k += 1
-    return k
+def _wrap(d, box, half):
+    """Minimum-image component (branch-free); |d| < box on input."""
+    return d + box * ((d < -half) * 1.0 - (d > half) * 1.0)
 
 
 @njit(cache=True)
 def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, o2, start2,
                 shape, offsets, kinds, periodic, box, mode, los, orient, q_lo, q_hi,
                 lut, q0, lut_scale, e2, edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-                hist_w, hist_raw, both, one, with_raw, with_regions, jbuf, qbuf):
-    """Count the pairs of catalogue-1 cells ``c_lo <= c1 < c_hi`` into one unit's histograms."""
+                hist_w, hist_raw, both, one, with_raw, with_regions, jbuf, qbuf,
+                origin, side, tol):
+    """Count the pairs of catalogue-1 cells ``c_lo <= c1 < c_hi`` into one unit's histograms.
+
+    For each point i and neighbour cell, a first branch-free pass keeps the candidates within
+    the separation range; a second pass bins only those. Non-periodic cells that lie entirely
+    beyond the search radius of point i are skipped (point-to-cell distance). The per-pair code
+    is written out in this one function on purpose: calls that pass arrays cost reference
+    counting on every pair.
+    """
     nb = edges_b.shape[0] - 1
+    eb0 = edges_b[0]
+    ebn = edges_b[nb]
+    n_lut = lut.shape[0]
+    n_e = e2.shape[0] - 1
+    e2_lo = e2[0]
+    e2_hi = e2[n_e]
     half = 0.5 * box
-    axis = los - 3
+    nz = shape[2]
+    ny = shape[1]
     n_pairs = 0
     for c1 in range(c_lo, c_hi):
         a0 = start1[c1]
@@ -181,54 +171,65 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
             b1 = start2[c2 + 1]
             if b0 == b1:
                 continue
+            prune = (not periodic) and kind != 1
+            lox = origin[0] + (c2 // (ny * nz)) * side[0] - tol
+            loy = origin[1] + ((c2 // nz) % ny) * side[1] - tol
+            loz = origin[2] + (c2 % nz) * side[2] - tol
+            hix = lox + side[0] + 2 * tol
+            hiy = loy + side[1] + 2 * tol
+            hiz = loz + side[2] + 2 * tol
             for i in range(a0, a1):
                 xi = x1[i]
                 yi = y1[i]
                 zi = z1[i]
-                wi = w1[i]
+                if prune:
+                    ex = max(lox - xi, 0.0, xi - hix)
+                    ey = max(loy - yi, 0.0, yi - hiy)
+                    ez = max(loz - zi, 0.0, zi - hiz)
+                    if ex * ex + ey * ey + ez * ez >= q_hi:
+                        continue
                 jlo = i + 1 if kind == 1 else b0
                 # pass 1, branch-free: keep the candidates within [q_lo, q_hi)
                 m = 0
-                for j in range(jlo, b1):
-                    dx = x2[j] - xi
-                    dy = y2[j] - yi
-                    dz = z2[j] - zi
-                    if periodic:
-                        dx += box * ((dx < -half) * 1.0 - (dx > half) * 1.0)
-                        dy += box * ((dy < -half) * 1.0 - (dy > half) * 1.0)
-                        dz += box * ((dz < -half) * 1.0 - (dz > half) * 1.0)
-                    d2 = dx * dx + dy * dy + dz * dz
-                    jbuf[m] = j
-                    qbuf[m] = d2
-                    m += (d2 < q_hi) & (d2 >= q_lo)
-                # pass 2: bin the kept pairs
-                for t in range(m):
-                    j = jbuf[t]
-                    d2 = qbuf[t]
-                    k1 = 0
-                    if mode == 0:
-                        k0 = _first_bin(d2, q0, lut, lut_scale, e2)
-                    else:
+                if periodic:
+                    for j in range(jlo, b1):
+                        dx = _wrap(x2[j] - xi, box, half)
+                        dy = _wrap(y2[j] - yi, box, half)
+                        dz = _wrap(z2[j] - zi, box, half)
+                        d2 = dx * dx + dy * dy + dz * dz
+                        jbuf[m] = j
+                        qbuf[m] = d2
+                        m += (d2 < q_hi) & (d2 >= q_lo)
+                else:
+                    for j in range(jlo, b1):
                         dx = x2[j] - xi
                         dy = y2[j] - yi
                         dz = z2[j] - zi
-                        if periodic:
-                            dx += box * ((dx < -half) * 1.0 - (dx > half) * 1.0)
-                            dy += box * ((dy < -half) * 1.0 - (dy > half) * 1.0)
-                            dz += box * ((dz < -half) * 1.0 - (dz > half) * 1.0)
-                        # orientation of the pair: d points from the "first" member
-                        sgn = 1.0
-                        first_is_j = False
-                        if orient and o2[j] < o1[i]:
-                            sgn = -1.0
-                            first_is_j = True
+                        d2 = dx * dx + dy * dy + dz * dz
+                        jbuf[m] = j
+                        qbuf[m] = d2
+                        m += (d2 < q_hi) & (d2 >= q_lo)
+                wi = w1[i]
+                # pass 2: bin the kept pairs
+                for t in range(m):
+                    j = jbuf[t]
+                    q = qbuf[t]
+                    k1 = 0
+                    if mode != 0:
+                        # projection d.l on the line of sight, d = x_j - x_i
+                        dx = x2[j] - xi
+                        dy = y2[j] - yi
+                        dz = z2[j] - zi
+                        flip = orient and o2[j] < o1[i]
                         if los >= 3:
-                            if axis == 0:
+                            if los == 3:
                                 dl = dx
-                            elif axis == 1:
+                            elif los == 4:
                                 dl = dy
                             else:
                                 dl = dz
+                            if periodic:
+                                dl = _wrap(dl, box, half)
                             l2 = 1.0
                         else:
                             if los == 0:
@@ -236,7 +237,7 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
                                 ly = yi + y2[j]
                                 lz = zi + z2[j]
                             elif los == 1:
-                                if first_is_j:
+                                if flip:
                                     lx = x2[j]
                                     ly = y2[j]
                                     lz = z2[j]
@@ -252,37 +253,173 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
                                 lz = zi * ni + z2[j] * nj
                             l2 = lx * lx + ly * ly + lz * lz
                             dl = dx * lx + dy * ly + dz * lz
-                        dl *= sgn
+                        if flip:
+                            dl = -dl
                         if mode == 1:
-                            if d2 > 0.0:
-                                mu = dl / np.sqrt(l2 * d2)
-                            else:
-                                mu = 0.0
-                            if mu > 1.0:
-                                mu = 1.0
-                            elif mu < -1.0:
-                                mu = -1.0
+                            tb = dl / np.sqrt(l2 * q) if q > 0.0 else 0.0
+                            tb = min(max(tb, -1.0), 1.0)
                             if abs_mu:
-                                mu = abs(mu)
-                            k1 = _second_bin(mu, edges_b, uniform_b, inv_width_b)
-                            if k1 < 0:
+                                tb = abs(tb)
+                            if tb < eb0 or tb > ebn:
                                 continue
-                            k0 = _first_bin(d2, q0, lut, lut_scale, e2)
                         else:
-                            pi = abs(dl) / np.sqrt(l2)
-                            if pi >= pi_hi or pi < pi_lo:
+                            tb = abs(dl) / np.sqrt(l2)
+                            if tb >= pi_hi or tb < pi_lo:
                                 continue
-                            rp2 = d2 - pi * pi
-                            if rp2 < 0.0:
-                                rp2 = 0.0
-                            if rp2 >= e2[e2.shape[0] - 1] or rp2 < e2[0]:
+                            q = max(q - tb * tb, 0.0)
+                            if q >= e2_hi or q < e2_lo:
                                 continue
-                            k1 = _second_bin(pi, edges_b, uniform_b, inv_width_b)
-                            k0 = _first_bin(rp2, q0, lut, lut_scale, e2)
+                        # second-axis bin: uniform guess or bisection, then exact correction
+                        if uniform_b:
+                            k1 = int((tb - eb0) * inv_width_b)
+                        else:
+                            lo_k = 0
+                            hi_k = nb
+                            while hi_k - lo_k > 1:
+                                mid = (lo_k + hi_k) // 2
+                                if tb >= edges_b[mid]:
+                                    lo_k = mid
+                                else:
+                                    hi_k = mid
+                            k1 = lo_k
+                        k1 = min(max(k1, 0), nb - 1)
+                        while k1 > 0 and tb < edges_b[k1]:
+                            k1 -= 1
+                        while k1 < nb - 1 and tb >= edges_b[k1 + 1]:
+                            k1 += 1
+                    # first-axis bin on squared separation: table guess, exact correction
+                    c = int((q - q0) * lut_scale)
+                    c = min(max(c, 0), n_lut - 1)
+                    k0 = lut[c]
+                    while k0 > 0 and q < e2[k0]:
+                        k0 -= 1
+                    while q >= e2[k0 + 1]:
+                        k0 += 1
                     flat = k0 * nb + k1
                     w = wi * w2[j]
                     hist_w[flat] += w
                     n_pairs += 1
+                    if with_raw:
+                        hist_raw[flat] += 1
+                    if with_regions:
+                        ri = r1[i]
+                        rj = r2[j]
+                        if ri == rj:
+                            both[ri, flat] += w
+                        else:
+                            one[ri, flat] += w
+                            one[rj, flat] += w
+    return n_pairs
+
+
+@njit(cache=True)
+def _count_unit_smu_uniform(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
+                            shape, offsets, kinds, periodic, box, los, q_lo, q_hi,
+                            lut, q0, lut_scale, e2, edges_b, n_mu,
+                            hist_w, hist_raw, both, one, with_raw, with_regions, jbuf, qbuf,
+                            origin, side, tol):
+    """Fast variant of :func:`_count_unit` for the common case: (s, |mu|) with uniform mu bins
+    over [0, 1], midpoint or fixed-axis line of sight (no pair orientation needed)."""
+    n_lut = lut.shape[0]
+    half = 0.5 * box
+    nz = shape[2]
+    ny = shape[1]
+    axis = los - 3
+    top = n_mu - 1
+    n_pairs = 0
+    for c1 in range(c_lo, c_hi):
+        a0 = start1[c1]
+        a1 = start1[c1 + 1]
+        if a0 == a1:
+            continue
+        for o in range(offsets.shape[0]):
+            c2 = _neighbour(c1, offsets[o], shape, periodic)
+            if c2 < 0:
+                continue
+            kind = kinds[o]
+            if kind == 2 and c2 <= c1:
+                continue
+            b0 = start2[c2]
+            b1 = start2[c2 + 1]
+            if b0 == b1:
+                continue
+            prune = (not periodic) and kind != 1
+            lox = origin[0] + (c2 // (ny * nz)) * side[0] - tol
+            loy = origin[1] + ((c2 // nz) % ny) * side[1] - tol
+            loz = origin[2] + (c2 % nz) * side[2] - tol
+            hix = lox + side[0] + 2 * tol
+            hiy = loy + side[1] + 2 * tol
+            hiz = loz + side[2] + 2 * tol
+            for i in range(a0, a1):
+                xi = x1[i]
+                yi = y1[i]
+                zi = z1[i]
+                if prune:
+                    ex = max(lox - xi, 0.0, xi - hix)
+                    ey = max(loy - yi, 0.0, yi - hiy)
+                    ez = max(loz - zi, 0.0, zi - hiz)
+                    if ex * ex + ey * ey + ez * ez >= q_hi:
+                        continue
+                jlo = i + 1 if kind == 1 else b0
+                m = 0
+                if periodic:
+                    for j in range(jlo, b1):
+                        dx = _wrap(x2[j] - xi, box, half)
+                        dy = _wrap(y2[j] - yi, box, half)
+                        dz = _wrap(z2[j] - zi, box, half)
+                        d2 = dx * dx + dy * dy + dz * dz
+                        jbuf[m] = j
+                        qbuf[m] = d2
+                        m += (d2 < q_hi) & (d2 >= q_lo)
+                else:
+                    for j in range(jlo, b1):
+                        dx = x2[j] - xi
+                        dy = y2[j] - yi
+                        dz = z2[j] - zi
+                        d2 = dx * dx + dy * dy + dz * dz
+                        jbuf[m] = j
+                        qbuf[m] = d2
+                        m += (d2 < q_hi) & (d2 >= q_lo)
+                n_pairs += m
+                wi = w1[i]
+                for t in range(m):
+                    j = jbuf[t]
+                    q = qbuf[t]
+                    xj = x2[j]
+                    yj = y2[j]
+                    zj = z2[j]
+                    if axis >= 0:
+                        if axis == 0:
+                            dl = xj - xi
+                        elif axis == 1:
+                            dl = yj - yi
+                        else:
+                            dl = zj - zi
+                        if periodic:
+                            dl = _wrap(dl, box, half)
+                        mu = abs(dl) / np.sqrt(q) if q > 0.0 else 0.0
+                    else:
+                        lx = xi + xj
+                        ly = yi + yj
+                        lz = zi + zj
+                        dl = (xj - xi) * lx + (yj - yi) * ly + (zj - zi) * lz
+                        l2 = lx * lx + ly * ly + lz * lz
+                        mu = abs(dl) / np.sqrt(l2 * q) if q > 0.0 else 0.0
+                    k1 = min(int(mu * n_mu), top)
+                    # exact correction against the edges (uniform guess may be one off)
+                    if k1 > 0 and mu < edges_b[k1]:
+                        k1 -= 1
+                    elif k1 < top and mu >= edges_b[k1 + 1]:
+                        k1 += 1
+                    c = min(int((q - q0) * lut_scale), n_lut - 1)
+                    k0 = lut[c]
+                    while k0 > 0 and q < e2[k0]:
+                        k0 -= 1
+                    while q >= e2[k0 + 1]:
+                        k0 += 1
+                    flat = k0 * n_mu + k1
+                    w = wi * w2[j]
+                    hist_w[flat] += w
                     if with_raw:
                         hist_raw[flat] += 1
                     if with_regions:
@@ -301,7 +438,8 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
                      x2, y2, z2, w2, r2, o2, start2, shape, offsets, kinds, periodic, box,
                      mode, los, orient, q_lo, q_hi, lut, q0, lut_scale, e2,
                      edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-                     hist_w, hist_raw, both, one, with_raw, with_regions, max_occupancy):
+                     hist_w, hist_raw, both, one, with_raw, with_regions, max_occupancy,
+                     origin, side, tol):
     """Count a batch of work units in parallel, one histogram slice per unit.
 
     ``unit_lo[u] <= c1 < unit_hi[u]`` are the catalogue-1 cells of unit u. Histograms have a
@@ -311,12 +449,23 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
     """
     n_units = unit_lo.shape[0]
     accepted = np.zeros(n_units, dtype=np.int64)
+    nb = edges_b.shape[0] - 1
+    fast = (mode == 1 and uniform_b and abs_mu and not orient and (los == 0 or los >= 3)
+            and edges_b[0] == 0.0 and edges_b[nb] == 1.0)
     for u in prange(n_units):
         jbuf = np.empty(max_occupancy, dtype=np.int64)
         qbuf = np.empty(max_occupancy, dtype=np.float64)
+        if fast:
+            accepted[u] = _count_unit_smu_uniform(
+                unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
+                shape, offsets, kinds, periodic, box, los, q_lo, q_hi, lut, q0, lut_scale, e2,
+                edges_b, nb, hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions,
+                jbuf, qbuf, origin, side, tol)
+            continue
         accepted[u] = _count_unit(
             unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, o2,
             start2, shape, offsets, kinds, periodic, box, mode, los, orient, q_lo, q_hi,
             lut, q0, lut_scale, e2, edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-            hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions, jbuf, qbuf)
+            hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions, jbuf, qbuf,
+            origin, side, tol)
     return accepted
