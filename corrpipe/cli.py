@@ -34,7 +34,19 @@ def build_parser() -> argparse.ArgumentParser:
                            help="more log output (-vv for debug)")
     verbosity.add_argument("-q", "--quiet", action="store_true",
                            help="only warnings and errors; no progress bars")
+    # -v/-q are accepted before or after the command name
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("-v", "--verbose", action="count", default=argparse.SUPPRESS,
+                        help="more log output (-vv for debug)")
+    common.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS,
+                        help="only warnings and errors; no progress bars")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    _add = sub.add_parser
+
+    def add_parser(name, **kw):
+        return _add(name, parents=[common], **kw)
+
+    sub.add_parser = add_parser  # type: ignore[method-assign]
 
     p = sub.add_parser("run", help="run the pipeline of a config (skipping up-to-date stages)",
                        description="Run every stage of every analysis in CONFIG. Stages whose "
@@ -96,6 +108,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("corrpipe: interrupted; finished stages are kept, rerun to resume", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into e.g. `head`
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
 
 
 def _dispatch(args: argparse.Namespace) -> int:
