@@ -116,8 +116,9 @@ def _rss_child(n: int) -> None:
     base = rss("VmRSS:")
     result = count_pairs(pos, w, binning=binning)
     peak = rss("VmHWM:")
+    # histograms: the result plus the per-unit histograms of one batch (8 units by default)
     print(json.dumps({"n": n, "input_bytes": pos.nbytes + w.nbytes,
-                      "hist_bytes": result.weighted.nbytes, "extra_peak_bytes": peak - base}))
+                      "hist_bytes": 9 * result.weighted.nbytes, "extra_peak_bytes": peak - base}))
 
 
 def main() -> None:
