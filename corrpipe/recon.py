@@ -8,7 +8,7 @@ displacement psi is solved from
 (Padmanabhan et al. 2012). In a periodic box with a fixed line of sight the equation is
 diagonal in Fourier space and is solved exactly; for a survey (observer at the origin, radial
 line of sight) it is solved iteratively in Fourier space, treating the radial term with the
-previous iterate (the scheme of Burden, Percival & Howlett 2015), with the over-relaxation
+previous iterate (the scheme of Burden, Percival & Howlett 2015 [from memory]), with the over-relaxation
 described in :func:`survey_displacement`. Data are then moved by ``-[psi + f (psi . r) r]``
 and randoms by ``-psi`` ("remove-rsd") or ``-[psi + f (psi . r) r]`` ("keep-rsd"); the
 estimator is (DD - 2DS + SS)/RR with the unshifted randoms for RR.

@@ -1,7 +1,8 @@
 """Validate BAO reconstruction on Zel'dovich box mocks: peak sharpening and alpha_iso scatter.
 
 For each mock (a Zel'dovich 1970 lattice with the Eisenstein & Hu 1998 linear power at
-z = 0.5, Poisson-subsampled to a galaxy density, matter tracer b = 1, redshift space along z):
+redshift ``--z``, Poisson-subsampled to a galaxy density, matter tracer b = 1, redshift space
+along the z axis):
 
 1. measure the monopole xi_0(s) before reconstruction and after it ((DD - 2DS + SS)/RR, with
    the "remove-rsd" convention), on the mesh (FFT autocorrelation, corrpipe.mesh) or with the
@@ -20,6 +21,7 @@ Padmanabhan et al. 2012 (MNRAS 427, 2132): Sigma_nl 8.1 -> 4.4 Mpc/h, alpha scat
 reconstruction and scales it to a 512^3 mesh.
 
 Usage:  python scripts/validate_recon.py [--mocks 10] [--n-mesh 256] [--pairs] [--memory]
+        python scripts/validate_recon.py --mocks 0 --memory      (memory figure only)
 """
 
 from __future__ import annotations
@@ -37,7 +39,6 @@ from corrpipe.fit import FitSettings, build_likelihood
 from corrpipe.fit.run import best_fit
 from corrpipe.theory.linear_power import LinearPower
 
-Z = 0.5
 S_EDGES = np.arange(30.0, 182.5, 5.0)
 
 
@@ -99,7 +100,7 @@ def xi0_pairs(data, shifted_randoms, box: float) -> np.ndarray:
     return dd - 2 * ds + ss
 
 
-def fit_alpha(s, xi, cov, cosmo, power, reconstructed: bool, damping=None):
+def fit_alpha(s, xi, cov, cosmo, power, z: float, reconstructed: bool, damping=None):
     """Maximum-posterior alpha_iso (and chi^2) of xi_0 with the isotropic template."""
     kw = {}
     if damping is not None:
@@ -108,7 +109,7 @@ def fit_alpha(s, xi, cov, cosmo, power, reconstructed: bool, damping=None):
                      reconstructed=reconstructed, profile_points=0, **kw)
     sel = (s >= st.s_min) & (s <= st.s_max)
     like = build_likelihood(s[sel], xi[sel], cov[np.ix_(sel, sel)], (0,), cosmology=cosmo,
-                            z_eff=Z, settings=st, linear_power=power)
+                            z_eff=z, settings=st, linear_power=power)
     best = best_fit(like)
     return float(like.physical(best)["alpha_par"]), float(like.chi2(best))
 
@@ -156,17 +157,25 @@ def main() -> None:
     parser.add_argument("--nbar", type=float, default=1e-3, help="galaxy density, (h/Mpc)^3")
     parser.add_argument("--smoothing", type=float, default=15.0, help="recon smoothing, Mpc/h")
     parser.add_argument("--seed", type=int, default=100, help="first mock seed")
+    parser.add_argument("--z", type=float, default=0.3,
+                        help="mock redshift (0.3: pre-reconstruction damping ~8 Mpc/h, as in "
+                        "the mocks of Padmanabhan et al. 2012)")
+    parser.add_argument("--random-ratio", type=float, default=5.0,
+                        help="shifted randoms per galaxy")
     parser.add_argument("--pairs", action="store_true", help="xi_0 from the pair counter")
     parser.add_argument("--memory", action="store_true", help="also measure peak memory")
     parser.add_argument("--save", help="write the measured xi_0 of every mock to this .npz")
     parser.add_argument("--load", help="fit the xi_0 stored by --save instead of new mocks")
     args = parser.parse_args()
+    if args.memory and args.mocks == 0:
+        memory_check(256)
+        return
 
     cosmo = preset("planck2018")
-    f = float(cosmo.growth_rate(Z))
-    power = LinearPower.eisenstein_hu(cosmo, z=Z)
+    f = float(cosmo.growth_rate(args.z))
+    power = LinearPower.eisenstein_hu(cosmo, z=args.z)
     settings = recon.ReconSettings(enabled=True, n_mesh=args.n_mesh, smoothing=args.smoothing,
-                                   random_ratio=2.0)
+                                   random_ratio=args.random_ratio)
     s = 0.5 * (S_EDGES[1:] + S_EDGES[:-1])
     pre, post = [], []
     t0 = time.perf_counter()
@@ -196,8 +205,8 @@ def main() -> None:
                                       beta=f).matrix
     nbar_post = args.nbar / (1 + 1 / settings.random_ratio)
     cov_post = gaussian_box_covariance(power, nbar_post, volume, S_EDGES, ells=(0,)).matrix
-    a_pre = np.array([fit_alpha(s, x, cov_pre, cosmo, power, False)[0] for x in pre])
-    a_post = np.array([fit_alpha(s, x, cov_post, cosmo, power, True)[0] for x in post])
+    a_pre = np.array([fit_alpha(s, x, cov_pre, cosmo, power, args.z, False)[0] for x in pre])
+    a_post = np.array([fit_alpha(s, x, cov_post, cosmo, power, args.z, True)[0] for x in post])
     print("\nmock   alpha_pre  alpha_post")
     for i, (a, b) in enumerate(zip(a_pre, a_post)):
         print(f"{i:4d}   {a:9.4f}  {b:10.4f}")
@@ -213,7 +222,7 @@ def main() -> None:
     grid = np.arange(0.0, 12.01, 1.0)
     best = []
     for xs, cov, rec in ((pre, cov_pre, False), (post, cov_post, True)):
-        chi = [fit_alpha(s, xs.mean(0), cov / m, cosmo, power, rec, d)[1] for d in grid]
+        chi = [fit_alpha(s, xs.mean(0), cov / m, cosmo, power, args.z, rec, d)[1] for d in grid]
         best.append(grid[int(np.argmin(chi))])
     print(f"best Sigma_nl (Mpc/h)  {best[0]:9.1f}   {best[1]:10.1f}")
     print("published: Padmanabhan et al. 2012 Sigma_nl 8.1 -> 4.4 Mpc/h, alpha scatter "
