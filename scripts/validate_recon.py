@@ -20,6 +20,15 @@ Padmanabhan et al. 2012 (MNRAS 427, 2132): Sigma_nl 8.1 -> 4.4 Mpc/h, alpha scat
 (REFERENCES.md sec. 7-8). ``--memory`` also measures the peak memory of a survey
 reconstruction and scales it to a 512^3 mesh.
 
+Measured 2026-12-01 on this machine (mesh xi_0, 1 (Gpc/h)^3 boxes, 256^3 lattice, nbar 1e-3,
+R = 15 Mpc/h, "remove-rsd"):
+  z = 0.3, 30 mocks, 5 randoms/galaxy: alpha scatter 0.0242 -> 0.0154 (ratio 0.64), mean
+  alpha - 1 = -0.0004 -> -0.0022 (-0.02 -> -0.14 scatter), peak contrast 2.60 -> 7.45,
+  Sigma_nl 8 -> 5 Mpc/h.
+  z = 0.5, 40 mocks, 2 randoms/galaxy: scatter 0.0228 -> 0.0169 (ratio 0.74), bias +0.08 ->
+  -0.16 scatter, peak contrast 2.52 -> 6.50, Sigma_nl 7 -> 3 Mpc/h.
+  Memory (--memory): 8.3 float64 meshes at the peak -> 8.3 GiB at 512^3 (4.0 GiB single).
+
 Usage:  python scripts/validate_recon.py [--mocks 10] [--n-mesh 256] [--pairs] [--memory]
         python scripts/validate_recon.py --mocks 0 --memory      (memory figure only)
 """
