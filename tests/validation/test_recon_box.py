@@ -1,10 +1,10 @@
 """Box reconstruction on Zel'dovich mocks with a known linear field.
 
-The mock is built here from corrpipe.mesh: a Gaussian linear field with the Eisenstein & Hu
-(1998) power spectrum (corrpipe.theory.linear_power), its Zel'dovich (1970) displacement
-psi(q) = IFFT(i k delta_k / k^2), and one particle per mesh node moved to x = q + psi(q)
-(redshift space: s = x + f psi_z z, Kaiser 1987). The true linear displacement of every
-particle is therefore known exactly.
+The mock: the Gaussian linear field of corrpipe.mocks (``linear_density``) with the
+Eisenstein & Hu (1998) power spectrum (corrpipe.theory.linear_power), its Zel'dovich (1970)
+displacement psi(q) = IFFT(i k delta_k / k^2) (corrpipe.mesh), and one particle per mesh node
+moved to x = q + psi(q) (redshift space: s = x + f psi_z z, Kaiser 1987). The true linear
+displacement of every particle is therefore known exactly.
 """
 
 from __future__ import annotations
@@ -14,6 +14,7 @@ import pytest
 
 from corrpipe import mesh, recon
 from corrpipe.cosmology import preset
+from corrpipe.mocks.box import linear_density
 from corrpipe.theory.linear_power import LinearPower
 
 BOX = 1000.0
@@ -25,15 +26,8 @@ def _zeldovich_lattice(seed: int, n: int = N_LATTICE, box: float = BOX, z: float
     """Lagrangian lattice q, displacement psi(q) (N, 3), linear field on the mesh, f."""
     cosmo = preset("planck2018")
     power = LinearPower.eisenstein_hu(cosmo, z=z)
-    rng = np.random.default_rng(seed)
-    noise_k = mesh.to_fourier(rng.standard_normal((n, n, n)))
-    kmag = np.sqrt(mesh.k_squared(n, box))
-    kmag[0, 0, 0] = 1.0
-    # numpy convention: <|delta_k|^2> = P(k) n^6 / V, and <|noise_k|^2> = n^3
-    amp = np.sqrt(power(kmag) * n**3 / box**3)
-    amp[0, 0, 0] = 0.0
-    delta_k = noise_k * amp
-    psi_mesh = mesh.displacement_fourier(delta_k, box)
+    delta = linear_density(power, box, n, seed)      # the mocks' own linear field
+    psi_mesh = mesh.displacement(delta, box)
     q1 = np.arange(n) * box / n
     q = np.stack(np.meshgrid(q1, q1, q1, indexing="ij"), -1).reshape(-1, 3)
     psi = psi_mesh.reshape(3, -1).T.copy()
