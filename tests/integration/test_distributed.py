@@ -144,7 +144,7 @@ def test_killed_worker_still_finishes_with_identical_counts(engine, survey, refe
     assert killed, "the worker was never killed"
     _assert_identical(result, reference)
     assert killed["addr"] not in client.scheduler_info()["workers"]
-    client.wait_for_workers(2, timeout=30)  # the nanny brings the worker back for later tests
+    client.wait_for_workers(2, timeout=120)  # the nanny brings the worker back for later tests
 
 
 @pytest.mark.slow
@@ -153,7 +153,7 @@ def test_losing_every_worker_rescatters_and_finishes_identical(engine, survey, r
     # "Data Locality"/scatter), so the engine must scatter the catalogue again itself
     settings, client = engine
     pos, weights, regions = survey
-    client.wait_for_workers(2, timeout=30)
+    client.wait_for_workers(2, timeout=120)
     pids = client.run(os.getpid)
     killed = []
 
@@ -168,7 +168,7 @@ def test_losing_every_worker_rescatters_and_finishes_identical(engine, survey, r
     assert killed == [2]
     _assert_identical(result, reference)
     assert not set(pids) & set(client.scheduler_info()["workers"])
-    client.wait_for_workers(2, timeout=30)
+    client.wait_for_workers(2, timeout=120)
 
 
 @pytest.mark.slow
