@@ -244,9 +244,12 @@ def _auto_refine(n_points: int, volume: float, radius: float) -> int:
     if volume <= 0 or n_points == 0:
         return 1
     density = n_points / volume
-    for refine in (3, 2):
-        if density * (radius / refine) ** 3 >= 4.0:
-            return refine
+    # measured with scripts/bench_paircount.py-like inputs: with point-to-cell pruning,
+    # cells of radius/2 beat radius/3 until cells of radius/3 hold ~50 points
+    if density * (radius / 3) ** 3 >= 50.0:
+        return 3
+    if density * (radius / 2) ** 3 >= 4.0:
+        return 2
     return 1
 
 
