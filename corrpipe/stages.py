@@ -375,31 +375,6 @@ class _Counter:
                               progress_path=self.ctx.sidecar(label), client=self.client)
 
 
-def _sum_split(parts: list):
-    """Split-random RR: sum the per-set counts and their normalisations (Keihänen et al. 2019)."""
-    from dataclasses import replace
-
-    first = parts[0]
-    total = lambda name: None if getattr(first, name) is None else sum(  # noqa: E731
-        getattr(p, name) for p in parts)
-    region_norm = None
-    if first.n_regions:
-        region_norm = np.array([sum(p.jackknife_norm(k) for p in parts)
-                                for k in range(first.n_regions)])
-    return replace(first, weighted=total("weighted"), raw=total("raw"),
-                   region_both=total("region_both"), region_one=total("region_one"),
-                   sum_w1=total("sum_w1"), sum_w1_sq=total("sum_w1_sq"),
-                   sum_w2=total("sum_w2"), sum_w2_sq=total("sum_w2_sq"),
-                   n1=total("n1"), n2=total("n2"),
-                   region_sum_w1=total("region_sum_w1"),
-                   region_sum_w1_sq=total("region_sum_w1_sq"),
-                   region_sum_w2=total("region_sum_w2"),
-                   region_sum_w2_sq=total("region_sum_w2_sq"),
-                   pair_norm=float(sum(p.norm for p in parts)),
-                   region_pair_norm=region_norm,
-                   meta={**first.meta, "rr_splits": len(parts)})
-
-
 def _read_inputs_for_counts(ctx: StageContext) -> dict:
     """Positions, weights and region labels of D, R (and S, shifted D) for the counts stage."""
     a = ctx.analysis
@@ -429,6 +404,8 @@ def _read_inputs_for_counts(ctx: StageContext) -> dict:
 def _counts(ctx: StageContext):
     """DD, DR and RR (split over random sets; analytic for a box) in (s, mu) [and (r_p, pi)];
     after reconstruction DD, DS, SS on the shifted catalogues and RR on the unshifted randoms."""
+    from corrpipe.paircount import combine_split_counts
+
     a = ctx.analysis
     inp = _read_inputs_for_counts(ctx)
     box_size, n_regions = inp["box_size"], inp["n_regions"]
@@ -450,7 +427,7 @@ def _counts(ctx: StageContext):
                     sel = subset == k
                     parts.append(counter(f"{mode}-RR{k}", binning, rpos[sel], rw[sel],
                                          None if r_reg is None else r_reg[sel]))
-                res["RR"] = parts[0] if n_sets == 1 else _sum_split(parts)
+                res["RR"] = parts[0] if n_sets == 1 else combine_split_counts(parts)
             else:
                 from corrpipe.paircount import analytic_box_rr
 
