@@ -40,6 +40,7 @@ _LOS_CODE = {name: code for code, name in enumerate(LINES_OF_SIGHT)}
 _MODE_CODE = {"s": 0, "smu": 1, "rppi": 2}
 _DEFAULT_UNITS = 192
 _BATCH_MEMORY = 256 * 2**20  # bytes of per-unit histograms held at once
+_VECTOR = True  # use the vectorised (s, |mu|) kernel where it applies
 _DEFAULT_BATCH = 8  # fixed, not per thread: the batch partition sets the summation order
 
 
@@ -265,6 +266,20 @@ def _lookup_table(edges: np.ndarray):
     return lut, float(e2[0]), float(scale)
 
 
+def _arithmetic_edges(edges: np.ndarray):
+    """``(start, step)`` when every edge but the last is exactly ``start + k * step`` in float64
+    (as the kernels recompute them), else None. The last edge only bounds the range."""
+    n = edges.size - 1
+    start = float(edges[0])
+    step = float((edges[-1] - edges[0]) / n)
+    if not step > 0:
+        return None
+    recomputed = np.arange(n, dtype=np.float64) * step + start
+    if not np.array_equal(recomputed, edges[:-1]) or edges[-1] < (n - 1) * step + start:
+        return None
+    return start, step
+
+
 def plan_units(start1: np.ndarray, start2: np.ndarray, grid: Grid, offsets: np.ndarray,
                kinds: np.ndarray, n_units: int) -> tuple:
     """Cut a count into about ``n_units`` work units of similar estimated cost.
@@ -389,12 +404,18 @@ def prepare_count(positions1, weights1=None, positions2=None, weights2=None, *,
     widths_b = np.diff(edges_b)
     uniform_b = bool(np.allclose(widths_b, widths_b[0], rtol=1e-12, atol=0.0))
     pi_lo, pi_hi = (float(edges_b[0]), float(edges_b[-1])) if binning.mode == "rppi" else (0.0, 0.0)
+    s_arith = _arithmetic_edges(first)
+    mu_arith = _arithmetic_edges(edges_b) if binning.mode == "smu" else None
+    linear_s = (s_arith is not None and mu_arith is not None and mu_arith[0] == 0.0
+                and float(edges_b[-1]) == 1.0 and mu_arith[1] == 1.0 / (edges_b.size - 1))
+    s0, ds = s_arith if s_arith is not None else (0.0, 1.0)
     kernel_args = dict(
         shape=grid.shape, offsets=offsets, kinds=kinds, periodic=grid.periodic,
         box=float(box_size) if box_size is not None else 0.0, mode=_MODE_CODE[binning.mode],
         los=_LOS_CODE[los], orient=orient,
         q_lo=binning.min_radius**2, q_hi=radius**2,
         lut=lut, q0=q0, lut_scale=lut_scale, e2=first * first,
+        linear_s=linear_s, s0=s0, ds=ds,
         edges_b=np.ascontiguousarray(edges_b), uniform_b=uniform_b,
         abs_mu=not mu_signed, inv_width_b=float(1.0 / widths_b[0]),
         pi_lo=pi_lo, pi_hi=pi_hi,
@@ -447,7 +468,8 @@ def count_units(prepared: PreparedCount, unit_ids) -> PartialCounts:
         a["orient"], a["q_lo"], a["q_hi"], a["lut"], a["q0"], a["lut_scale"], a["e2"],
         a["edges_b"], a["uniform_b"], a["abs_mu"], a["inv_width_b"], a["pi_lo"], a["pi_hi"],
         hist_w, hist_raw, both, one, prepared.raw, nreg > 0, a["max_occupancy"],
-        prepared.grid.origin, prepared.grid.side, a["tol"])
+        prepared.grid.origin, prepared.grid.side, a["tol"], a["linear_s"] and _VECTOR,
+        a["s0"], a["ds"])
     weighted = _ordered_sum(hist_w, nflat)
     raw = _ordered_sum(hist_raw, nflat, np.int64) if prepared.raw else None
     region_both = _ordered_sum(both, (nreg, nflat)) if nreg else None
