@@ -29,6 +29,13 @@ few hours on 2 cores, best on a bigger machine)::
 
 Everything is written below ``--out`` (one folder per mock); rerunning skips the pipeline
 stages that are already up to date.
+
+Measured on 2026-12-01 (internal numbers, 2 loaded cores, ``--n-box 10 --n-survey 10
+--box-mesh 128 --box-nbar 1e-4``, about 50 min): box batch (truth 1.05, 0.97) mean alpha_par
+1.017, alpha_perp 0.983, mean bias -0.28 / +0.25 sigma, 68% coverage 80% / 60%, scatter
+0.061 / 0.047 vs mean error 0.086 / 0.045. Survey batch at the "test" scale (34k galaxies):
+posteriors nearly as wide as the 0.8-1.2 prior, mean bias +0.04 / +0.72 sigma, coverage
+100% / 70%; that scale is too small for a BAO detection per mock, use "demo" or "large".
 """
 
 from __future__ import annotations
