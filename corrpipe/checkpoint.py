@@ -30,10 +30,41 @@ __all__ = [
     "checkpoint_state",
     "content_checksum",
     "write_json_atomic",
+    "write_text_atomic",
+    "atomic_path",
 ]
 
 #: Version of the layout of stage files. Bump when a stage's stored layout changes.
 SCHEMA_VERSION = 1
+
+
+@contextlib.contextmanager
+def atomic_path(path: str | Path) -> Iterator[Path]:
+    """Yield a temporary path beside ``path``; on success fsync it and move it into place.
+
+    Whatever is written to the temporary path appears at ``path`` all at once
+    (:func:`os.replace`) or not at all: on an exception the temporary file is removed and an
+    existing ``path`` is left untouched.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}{path.suffix}")
+    try:
+        yield tmp
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+        _fsync_dir(path.parent)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def write_text_atomic(path: str | Path, text: str) -> Path:
+    """Write a text file atomically (see :func:`atomic_path`)."""
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return Path(path)
 
 
 def content_checksum(h5: h5py.Group) -> str:
@@ -78,30 +109,18 @@ def write_checkpoint(path: str | Path, stage: str, fingerprint: str,
     Path
         The written file.
     """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        with h5py.File(tmp, "w") as h5:
-            fill(h5)
-            h5.attrs["stage"] = stage
-            h5.attrs["fingerprint"] = fingerprint
-            h5.attrs["schema_version"] = SCHEMA_VERSION
-            h5.attrs["corrpipe_version"] = __version__
-            h5.attrs["created"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
-            for key, value in provenance.items():
-                h5.attrs[key] = value if isinstance(value, (int, float, str)) else json.dumps(value)
-            h5.attrs["checksum"] = content_checksum(h5)
-            h5.attrs["complete"] = 1  # commit mark, written last
-            h5.flush()
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-        _fsync_dir(path.parent)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
+    with atomic_path(path) as tmp, h5py.File(tmp, "w") as h5:
+        fill(h5)
+        h5.attrs["stage"] = stage
+        h5.attrs["fingerprint"] = fingerprint
+        h5.attrs["schema_version"] = SCHEMA_VERSION
+        h5.attrs["corrpipe_version"] = __version__
+        h5.attrs["created"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+        for key, value in provenance.items():
+            h5.attrs[key] = value if isinstance(value, (int, float, str)) else json.dumps(value)
+        h5.attrs["checksum"] = content_checksum(h5)
+        h5.attrs["complete"] = 1  # commit mark, written last
+    return Path(path)
 
 
 def checkpoint_state(path: str | Path) -> tuple[str, str | None]:
@@ -155,21 +174,8 @@ def open_checkpoint(path: str | Path, fingerprint: str | None = None) -> Iterato
 
 def write_json_atomic(path: str | Path, payload: Any) -> Path:
     """Write JSON to ``path`` atomically (temporary file, fsync, os.replace)."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(payload, fh, indent=2, sort_keys=False, default=_json_default)
-            fh.write("\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-        _fsync_dir(path.parent)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
+    text = json.dumps(payload, indent=2, sort_keys=False, default=_json_default) + "\n"
+    return write_text_atomic(path, text)
 
 
 def _json_default(obj: Any) -> Any:

@@ -702,7 +702,7 @@ def _fit(ctx: StageContext):
 
 def _report(ctx: StageContext):
     """summary.json, summary.txt and plots of one analysis (``[report]``)."""
-    from corrpipe.checkpoint import write_json_atomic
+    from corrpipe.checkpoint import write_json_atomic, write_text_atomic
     from corrpipe.fit import FitResult
 
     a = ctx.analysis
@@ -717,7 +717,7 @@ def _report(ctx: StageContext):
     summary["config"] = str(ctx.config.path) if ctx.config.path else ""
     write_json_atomic(ctx.folder / "summary.json", summary)
     text = result.text_summary()
-    _write_text_atomic(ctx.folder / "summary.txt", text + "\n")
+    write_text_atomic(ctx.folder / "summary.txt", text + "\n")
     plots = []
     if a.report.plots:
         plots = _write_plots(ctx, result)
@@ -729,28 +729,16 @@ def _report(ctx: StageContext):
     return fill
 
 
-def _write_text_atomic(path, text: str) -> None:
-    import os
-
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    tmp.write_text(text)
-    os.replace(tmp, path)
-
-
 def _write_plots(ctx: StageContext, result) -> list:
-    import os
-
+    from corrpipe.checkpoint import atomic_path
     from corrpipe.fit.plots import plot_multipoles, plot_posterior
 
-    folder = ctx.folder / "report"
-    folder.mkdir(exist_ok=True)
     written = []
     for name, make in (("multipoles.png", plot_multipoles), ("posterior.png", plot_posterior)):
         fig = make(result)
-        path = folder / name
-        tmp = folder / f".{name}.tmp-{os.getpid()}.png"
-        fig.savefig(tmp, dpi=ctx.analysis.report.dpi, bbox_inches="tight")
-        os.replace(tmp, path)
+        path = ctx.folder / "report" / name
+        with atomic_path(path) as tmp:
+            fig.savefig(tmp, dpi=ctx.analysis.report.dpi, bbox_inches="tight", format="png")
         written.append(path)
     return written
 
@@ -801,7 +789,7 @@ def fit_external(config, path, output=None, *, progress: bool = True) -> dict:
     """
     from pathlib import Path
 
-    from corrpipe.checkpoint import write_checkpoint, write_json_atomic
+    from corrpipe.checkpoint import write_checkpoint, write_json_atomic, write_text_atomic
     from corrpipe.fit import fit_multipoles
     from corrpipe.fit.external import load_external_multipoles
     from corrpipe.pipeline import file_digest, output_lock
@@ -832,7 +820,7 @@ def fit_external(config, path, output=None, *, progress: bool = True) -> dict:
                           json.dumps({str(path): file_digest(path)})})
         write_json_atomic(folder / "summary.json", summary)
         text = result.text_summary()
-        _write_text_atomic(folder / "summary.txt", text + "\n")
+        write_text_atomic(folder / "summary.txt", text + "\n")
         progress_file = folder / ".fit.external.progress.h5"
         if progress_file.exists():
             progress_file.unlink()
