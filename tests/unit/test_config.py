@@ -114,3 +114,13 @@ def test_settings_are_frozen(tmp_path):
 def test_parse_config_without_file_uses_cwd():
     cfg = parse_config("[alpha]\nn_mu = 4\n", classes=CLASSES)
     assert cfg.analyses[0].alpha.n_mu == 4
+
+
+def test_readme_config_reference_is_current():
+    # The README reproduces `corrpipe settings`; regenerate it when a setting changes
+    # (common practice: documentation generated from the declarations stays in step).
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
+    from corrpipe.config import config_reference
+
+    assert config_reference().rstrip() in readme, (
+        "README's 'Config reference' is out of date: paste the output of `corrpipe settings`")
