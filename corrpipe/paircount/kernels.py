@@ -479,6 +479,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
     local = np.zeros(n_flat + _N_SPARE)
     local_raw = np.zeros(n_flat + _N_SPARE if with_raw else 0, dtype=np.int64)
     n_pairs = 0
+    n2 = x2.shape[0]
     for c1 in range(c_lo, c_hi):
         a0 = start1[c1]
         a1 = start1[c1 + 1]
@@ -513,7 +514,10 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                     if ex * ex + ey * ey + ez * ez >= q_hi:
                         continue
                 jlo = np.uint64(i + 1 if kind == 1 else b0)
-                n = b1 - np.int64(jlo)
+                n_true = b1 - np.int64(jlo)
+                # round the trip count up to whole SIMD blocks (no scalar remainder); the
+                # extra candidates lie in the following cells and go to spare slots
+                n = min((n_true + 7) & ~7, n2 - np.int64(jlo))
                 kept = 0
                 if periodic:
                     for t in range(n):
@@ -529,7 +533,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                         else:
                             dl = dz
                         mu = abs(dl) / np.sqrt(max(q, 1e-300))
-                        ok = (q < q_hi) & (q >= q_lo)
+                        ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
                         flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
                         ibuf[t] = flat if ok else n_flat + (t & (_N_SPARE - 1))
                         kept += ok
@@ -547,7 +551,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                         else:
                             dl = dz
                         mu = abs(dl) / np.sqrt(max(q, 1e-300))
-                        ok = (q < q_hi) & (q >= q_lo)
+                        ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
                         flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
                         ibuf[t] = flat if ok else n_flat + (t & (_N_SPARE - 1))
                         kept += ok
@@ -567,7 +571,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                         dl = dx * lx + dy * ly + dz * lz
                         l2 = lx * lx + ly * ly + lz * lz
                         mu = abs(dl) / np.sqrt(max(l2 * q, 1e-300))
-                        ok = (q < q_hi) & (q >= q_lo)
+                        ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
                         flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
                         ibuf[t] = flat if ok else n_flat + (t & (_N_SPARE - 1))
                         kept += ok
@@ -625,7 +629,7 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
             and edges_b[0] == 0.0 and edges_b[nb] == 1.0)
     for u in prange(n_units):
         if fast and linear_s:
-            ibuf = np.empty(max_occupancy, dtype=np.int64)
+            ibuf = np.empty(max_occupancy + 8, dtype=np.int64)
             accepted[u] = _count_unit_smu_vector(
                 unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
                 shape, offsets, kinds, periodic, box, los, q_lo, q_hi, s0, ds, e2.shape[0] - 1,
