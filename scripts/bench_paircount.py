@@ -138,6 +138,7 @@ def main() -> None:
     threads = numba.config.NUMBA_NUM_THREADS
     print(f"machine: {os.cpu_count()} cores, numba threads {threads}; N = {n}, box {BOX:g} Mpc/h, "
           f"s_max {S_MAX:g} Mpc/h, 30 s bins x 100 mu bins")
+    print("load average (1, 5, 15 min) at start: " + ", ".join(f"{v:.2f}" for v in os.getloadavg()))
 
     # warm-up: compile or load every kernel before timing
     count_pairs(pos[:3000], w[:3000], binning=binning)
@@ -208,6 +209,7 @@ def main() -> None:
           f"count {mem['extra_peak_bytes'] / mib:.1f} MiB, inputs + extra {total_peak / mib:.1f} MiB; "
           f"limit 2 x inputs + histograms = {allowed / mib:.1f} MiB -> "
           f"{'within' if total_peak <= allowed else 'OVER'} ({total_peak / allowed:.2f} of the limit)")
+    print("load average (1, 5, 15 min) at end: " + ", ".join(f"{v:.2f}" for v in os.getloadavg()))
 
 
 if __name__ == "__main__":

@@ -275,7 +275,7 @@ def _arithmetic_edges(edges: np.ndarray):
     if not step > 0:
         return None
     recomputed = np.arange(n, dtype=np.float64) * step + start
-    if not np.array_equal(recomputed, edges[:-1]) or edges[-1] < (n - 1) * step + start:
+    if not np.array_equal(recomputed, edges[:-1]):
         return None
     return start, step
 
