@@ -109,8 +109,10 @@ class EngineSettings:
                               "Give a cluster several units per worker thread", low=0,
                               high=10_000_000)
     units_per_task: int = setting(0, "pair-count work units per task, and per batch of the "
-                                  "threads engine; 0 = 4 per worker thread (equal values give "
-                                  "bitwise equal counts on both engines)", low=0, high=100000)
+                                  "threads engine; 0 = automatic (threads: 4 per thread; Dask: "
+                                  "about 4 tasks per worker thread of the cluster). Equal "
+                                  "explicit values give bitwise equal counts on both engines",
+                                  low=0, high=100000)
 
     def __post_init__(self) -> None:
         for name, allowed in (("kind", ENGINE_KINDS), ("cluster", CLUSTER_KINDS)):
@@ -386,6 +388,24 @@ n_regions, raw, progress, progress_path
     return _count_on_dask(client, settings, prepared, progress, progress_path, on_partial)
 
 
+def _dask_batch_size(client, settings: EngineSettings, n_units: int) -> int:
+    """Units per task: the configured value, else about four tasks per worker thread.
+
+    Few, larger tasks keep the per-task cost of scheduling and result transfer small against
+    the counting (measured on 2 workers: 48 tasks cost ~25 % over the threads engine, 8 tasks
+    ~5 %), while four per thread still balance the load.
+    """
+    if settings.units_per_task > 0:
+        return int(settings.units_per_task)
+    try:
+        total = sum(int(v) for v in client.nthreads().values())
+    except Exception:  # noqa: BLE001 - an unusual client: fall back to the per-thread rule
+        total = 0
+    if total <= 0:
+        return settings.batch_size()
+    return max(1, -(-int(n_units) // (4 * total)))
+
+
 def _count_on_dask(client, settings: EngineSettings, prepared: PreparedCount, progress: bool,
                    progress_path, on_partial) -> PairCounts:
     from tqdm.auto import tqdm
@@ -394,7 +414,7 @@ def _count_on_dask(client, settings: EngineSettings, prepared: PreparedCount, pr
 
     sidecar = ProgressSidecar(progress_path, prepared) if progress_path is not None else None
     partials = sidecar.load() if sidecar is not None else []
-    size = min(settings.batch_size(), _memory_cap(prepared))
+    size = min(_dask_batch_size(client, settings, prepared.n_units), _memory_cap(prepared))
     n_done = sum(int(p.unit_ids.size) for p in partials)
     bar = tqdm(total=prepared.n_units, initial=n_done, unit="unit", disable=not progress,
                desc=f"pairs {'auto' if prepared.auto else 'cross'} (dask)", leave=False)
