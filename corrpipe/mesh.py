@@ -26,6 +26,7 @@ from corrpipe.errors import InputError
 from corrpipe import mesh_kernels
 
 __all__ = [
+    "derivative_wavenumbers",
     "SCHEMES",
     "cell_size",
     "paint",
@@ -329,14 +330,19 @@ def gradient(field: np.ndarray, box_size: float, workers: int | None = None) -> 
     """
     n = _check_field(field)
     fk = to_fourier(field, workers)
-    ks = _derivative_wavenumbers(n, box_size, fk.real.dtype)
+    ks = derivative_wavenumbers(n, box_size, fk.real.dtype)
     out = np.empty((3,) + field.shape, dtype=field.dtype)
     for a in range(3):
         out[a] = to_real(1j * ks[a] * fk, n, workers)
     return out
 
 
-def _derivative_wavenumbers(n: int, box_size: float, dtype):
+def derivative_wavenumbers(n: int, box_size: float, dtype: type = np.float64):
+    """Wavevector components (h/Mpc) for spectral derivatives, with the Nyquist planes zeroed.
+
+    A derivative's Nyquist mode has no well-defined sign on an even mesh; zeroing it keeps
+    gradients of real fields real (common practice).
+    """
     kx, ky, kz = wavenumbers(n, box_size, dtype)
     if n % 2 == 0:
         kx = kx.copy()
@@ -374,7 +380,7 @@ def displacement_fourier(delta_k: np.ndarray, box_size: float, workers: int | No
     (Zel'dovich 1970, A&A 5, 84; e.g. Bernardeau et al. 2002, Phys. Rep. 367, 1, sec. 2.5).
     """
     n = delta_k.shape[0]
-    ks = list(_derivative_wavenumbers(n, box_size, delta_k.real.dtype))
+    ks = list(derivative_wavenumbers(n, box_size, delta_k.real.dtype))
     a = [float(s) for s in stretch]
     ks_true = [ks[i] / a[i] for i in range(3)]
     kx, ky, kz = wavenumbers(n, box_size, delta_k.real.dtype)

@@ -426,16 +426,6 @@ def box_geometry(box_size: float, settings: ReconSettings) -> MeshGeometry:
 # ----------------------------------------------------------------------------- fields
 
 
-def _derivative_k(n: int, box_size: float, dtype) -> list:
-    """Wavevector components for spectral derivatives (Nyquist planes zeroed), h/Mpc."""
-    ks = [k.copy() for k in mesh.wavenumbers(n, box_size, dtype)]
-    if n % 2 == 0:
-        ks[0][n // 2] = 0
-        ks[1][:, n // 2] = 0
-        ks[2][:, :, n // 2] = 0
-    return ks
-
-
 def _smoothing_kernel(n: int, box_size: float, radius: float, dtype) -> np.ndarray:
     return np.exp(-0.5 * mesh.k_squared(n, box_size, dtype) * dtype(radius) ** 2)
 
@@ -538,7 +528,7 @@ class _Spectral:
     def __init__(self, n: int, box_size: float, dtype, workers):
         self.n = n
         self.workers = workers
-        self.ks = _derivative_k(n, box_size, dtype)
+        self.ks = list(mesh.derivative_wavenumbers(n, box_size, dtype))
         k2 = mesh.k_squared(n, box_size, dtype)
         k2[0, 0, 0] = 1
         self.inv_k2 = 1 / k2

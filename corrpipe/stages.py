@@ -671,7 +671,7 @@ def _fit(ctx: StageContext):
 
     from corrpipe.covariance import CovarianceResult
     from corrpipe.estimators import Estimate
-    from corrpipe.fit import build_likelihood, fit_multipoles
+    from corrpipe.fit import fit_multipoles
 
     a = ctx.analysis
     with ctx.read("estimate") as h5:
@@ -685,11 +685,8 @@ def _fit(ctx: StageContext):
                                        recon_convention=a.reconstruct.convention,
                                        smoothing_radius=a.reconstruct.smoothing)
     cosmo = _cosmology(a)
-    like = build_likelihood(est.s, est.vector("multipoles"), cov.matrix, est.ells,
-                            cosmology=cosmo, z_eff=z_eff, settings=settings)
-    inputs = _fit_inputs(a, est, cov, settings, like.n_dim + like.n_broadband)
+    inputs = _fit_inputs(a, est, cov, settings, settings.n_fit_parameters)
     result = fit_multipoles(cosmology=cosmo, z_eff=z_eff, settings=settings,
-                            linear_power=like.template.linear_power,
                             progress_path=ctx.progress_path, progress=ctx.show_progress,
                             seed=ctx.seed("mcmc") % (2**32), covariance_type=cov.kind,
                             name=a.name, **inputs)

@@ -158,6 +158,23 @@ class FitSettings:
         return (0,) if self.analysis == "isotropic" else self.ells
 
     @property
+    def n_sampled_parameters(self) -> int:
+        """Number of sampled (non-linear) parameters: dilations, B, and beta and the damping
+        scales when their priors are free (the order of ``Likelihood.names``)."""
+        n = 1 if self.analysis == "isotropic" else 2
+        n += 1  # B
+        if self.analysis == "anisotropic" and self.beta_prior_width > 0:
+            n += 1
+        if self.sigma_prior_width > 0:
+            n += 2
+        return n
+
+    @property
+    def n_fit_parameters(self) -> int:
+        """Every fitted parameter, sampled and broadband (for the Percival et al. 2014 factor)."""
+        return self.n_sampled_parameters + len(self.broadband_powers) * len(self.fit_ells)
+
+    @property
     def damping(self) -> tuple[float, float]:
         """(Sigma_par, Sigma_perp) in Mpc/h after applying the reconstruction defaults."""
         default = POST_RECON_DAMPING if self.reconstructed else PRE_RECON_DAMPING

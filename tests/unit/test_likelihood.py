@@ -151,3 +151,16 @@ def test_free_damping_grid():
     p = like.physical(best_fit(like))
     assert abs(p["alpha_par"] - 1.04) < 0.002 and abs(p["alpha_perp"] - 0.97) < 0.002
     assert abs(p["sigma_par"] - 9.3) < 0.3 and abs(p["sigma_perp"] - 5.4) < 0.3
+
+
+@pytest.mark.parametrize("kw", [dict(), dict(analysis="isotropic"),
+                                dict(parametrisation="alpha-epsilon"),
+                                dict(beta_prior_width=0.0)])
+def test_settings_count_the_parameters_the_likelihood_samples(kw):
+    # The pipeline takes the Percival et al. (2014) parameter count from the settings; it must
+    # equal what the likelihood actually samples and marginalises (internal consistency).
+    settings = FitSettings(**kw)
+    d, cov = _data(1.0, 1.0)
+    like = Likelihood(S, d, cov, (0, 2), _template(), settings)
+    assert settings.n_sampled_parameters == like.n_dim
+    assert settings.n_fit_parameters == like.n_dim + like.n_broadband
