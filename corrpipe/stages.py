@@ -585,17 +585,8 @@ def _covariance(ctx: StageContext):
         if smu["DD"].n_regions < 2:
             raise StageError("covariance.kind = 'jackknife' needs jackknife regions in the "
                              "counts; for a periodic box set [counts] box_rr = 'randoms'")
-        weight = cv._cross_weight(c.jackknife_weighting, c.cross_weight, smu["DD"].n_regions)
-        from corrpipe.estimators import estimate_from_counts
-        from tqdm.auto import tqdm
-
-        rows = []
-        for k in tqdm(range(smu["DD"].n_regions), desc="jackknife",
-                      disable=not ctx.show_progress):
-            rows.append(estimate_from_counts(smu, a.estimate, delete_region=k,
-                                             cross_weight=weight).vector("multipoles"))
-        samples = np.array(rows)
-        result = cv.jackknife_covariance(samples, weight)
+        result = cv.jackknife_from_counts(smu, a.estimate, c, progress=ctx.show_progress,
+                                          check=False)
     elif c.kind == "mocks":
         files = cv.expand_mock_paths(c.mocks)
         samples = _mock_vectors(ctx, files)
