@@ -357,14 +357,13 @@ def _coerce(value: Any, tp: Any, label: str) -> Any:
                              and type(None) in args and str not in args):
             if type(None) in args:
                 return None
-        errors = []
         for a in args:
             if a is type(None):
                 continue
             try:
                 return _coerce(value, a, label)
-            except ConfigError as exc:
-                errors.append(exc)
+            except ConfigError:
+                continue
         raise ConfigError(f"{label} = {value!r}: expected {_type_name(tp)}")
     if origin is tuple:
         if not isinstance(value, (list, tuple)):

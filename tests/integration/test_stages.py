@@ -98,7 +98,6 @@ def test_sigkill_during_counts_then_resume_matches(tmp_path):
     proc.send_signal(signal.SIGKILL)
     proc.wait()
     assert not (out / "counts.h5").exists()
-    assert not list(out.glob(".counts.h5.tmp-*")) or True  # a temp file may remain; rerun cleans
     outcome = api.run(cfg, progress=False, until="counts")
     assert ran(outcome) == ["counts"]
     assert not list(out.glob(".counts.*"))
