@@ -469,5 +469,4 @@ class CovarianceSettings(RegionSettings):
                           "no pk_file is given", low=0.1, high=20.0)
     k_max: float = setting(2.0, "upper k of the analytic covariance integral", unit="h/Mpc",
                            low=0.0, low_open=True)
-    n_params: int = setting(3, "number of fitted parameters, for the Percival factors", low=1)
     max_condition: float = setting(1e12, "largest acceptable condition number", low=1.0)
