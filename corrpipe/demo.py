@@ -19,6 +19,7 @@ import json
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -91,7 +92,10 @@ class DemoInputs:
     truth_file : Path
         JSON with the truth, the survey description and the mock settings.
     truth : Dilation
-        Injected dilation at the sample's effective redshift.
+        Injected dilation at the sample's mean redshift (:meth:`truth_at` gives it at the
+        pipeline's z_eff).
+    true_cosmology, fiducial : corrpipe.cosmology.Cosmology
+        The cosmology the mock was made in and the analysis fiducial.
     n_galaxies, n_randoms : int
         Catalogue sizes.
     area_deg2 : float
@@ -111,7 +115,13 @@ class DemoInputs:
     n_randoms: int
     area_deg2: float
     seconds: float
+    true_cosmology: Any
+    fiducial: Any
     meta: dict = field(default_factory=dict)
+
+    def truth_at(self, z_eff: float) -> Dilation:
+        """Injected dilation at redshift ``z_eff`` (e.g. the z_eff the pipeline reports)."""
+        return expected_dilation(self.true_cosmology, self.fiducial, float(z_eff))
 
 
 def demo_config_text(settings: MockSettings, data_name: str, randoms_name: str,
@@ -231,10 +241,11 @@ def write_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
                       config=config_path, config_text=text, truth_file=truth_path,
                       truth=truth, n_galaxies=len(sky), n_randoms=n_rand,
                       area_deg2=footprint.area_deg2(),
-                      seconds=time.perf_counter() - start, meta=sky.meta)
+                      seconds=time.perf_counter() - start, true_cosmology=cosmo,
+                      fiducial=fid, meta=sky.meta)
 
 
-def truth_vs_recovered(truth: Dilation, summary: dict) -> str:
+def truth_vs_recovered(truth: Dilation, summary: dict, distances: dict | None = None) -> str:
     """Table of injected vs recovered dilations, with the offset in units of the error.
 
     Parameters
@@ -244,20 +255,26 @@ def truth_vs_recovered(truth: Dilation, summary: dict) -> str:
     summary : dict
         The ``"summary"`` mapping of ``summary.json``: per parameter ``median``, ``p16``,
         ``p84``.
+    distances : dict, optional
+        The ``"distances"`` mapping of ``summary.json`` (D_M/r_d, D_H/r_d, D_V/r_d, same
+        keys); rows are added for those the truth knows.
 
     Returns
     -------
     str
-        One line per parameter found in ``summary`` (alpha_par, alpha_perp, alpha).
+        One line per quantity found (alpha_par, alpha_perp, alpha, then distances).
     """
     lines = [f"{SURVEY_NAME} (fictional), z_eff = {truth.z_eff:.3f}",
              f"{'parameter':>11} {'truth':>8} {'recovered':>10} {'68% interval':>19} "
              f"{'offset':>8}"]
-    for name, value in (("alpha_par", truth.alpha_par), ("alpha_perp", truth.alpha_perp),
-                        ("alpha", truth.alpha_iso)):
-        if name not in summary:
+    rows = [(summary, "alpha_par", truth.alpha_par), (summary, "alpha_perp", truth.alpha_perp),
+            (summary, "alpha", truth.alpha_iso)]
+    rows += [(distances or {}, key, getattr(truth, key))
+             for key in ("DM_over_rd", "DH_over_rd", "DV_over_rd")]
+    for table, name, value in rows:
+        if name not in table or not np.isfinite(value):
             continue
-        s = summary[name]
+        s = table[name]
         sigma = 0.5 * (float(s["p84"]) - float(s["p16"]))
         pull = (float(s["median"]) - value) / sigma if sigma > 0 else float("nan")
         lines.append(f"{name:>11} {value:8.4f} {float(s['median']):10.4f} "

@@ -833,7 +833,7 @@ def run_demo(output, *, seed: int = 7, scale: str = "demo", progress: bool = Tru
 
     from corrpipe.api import run as run_pipeline
     from corrpipe.config import load_config
-    from corrpipe.demo import SURVEY_NAME, TRACER, write_demo_inputs
+    from corrpipe.demo import SURVEY_NAME, TRACER, truth_vs_recovered, write_demo_inputs
 
     start = time.perf_counter()
     folder = Path(output)
@@ -843,20 +843,21 @@ def run_demo(output, *, seed: int = 7, scale: str = "demo", progress: bool = Tru
          f"{inputs.area_deg2:.0f} deg^2 ({inputs.seconds:.0f} s); config {inputs.config}")
     cfg = load_config(inputs.config)
     run_pipeline(cfg, progress=progress, echo=echo)
-    summary = json.loads((cfg.analysis_folder(cfg.analyses[0]) / "summary.json").read_text())
-    truth = inputs.truth
+    results = cfg.analysis_folder(cfg.analyses[0])
+    summary = json.loads((results / "summary.json").read_text())
+    truth = inputs.truth_at(summary["z_eff"])
     echo("")
-    echo(f"  {'':11s} {'truth':>8s} {'recovered':>10s} {'error':>8s} {'pull':>6s}")
+    echo("Truth injected into the demo survey against what the pipeline recovered:")
+    echo(truth_vs_recovered(truth, summary["summary"], summary.get("distances")))
+    echo(f"results: {results} (summary.json, report/*.png); total "
+         f"{time.perf_counter() - start:.0f} s")
     recovered = {}
     for key, true in (("alpha_par", truth.alpha_par), ("alpha_perp", truth.alpha_perp),
                       ("alpha", truth.alpha_iso)):
         s = summary["summary"][key]
-        err = 0.5 * (s["error_plus"] + s["error_minus"])
-        pull = (s["median"] - true) / err if err > 0 else float("nan")
-        recovered[key] = {"truth": true, "median": s["median"], "error": err, "pull": pull}
-        echo(f"  {key:11s} {true:8.4f} {s['median']:10.4f} {err:8.4f} {pull:+6.2f}")
-    echo(f"  results: {cfg.analysis_folder(cfg.analyses[0])} (summary.json, report/*.png); "
-         f"total {time.perf_counter() - start:.0f} s")
+        err = 0.5 * (s["p84"] - s["p16"])
+        recovered[key] = {"truth": true, "median": s["median"], "error": err,
+                          "pull": (s["median"] - true) / err if err > 0 else float("nan")}
     return {"truth": truth.as_dict(), "recovered": recovered, "summary": summary}
 
 

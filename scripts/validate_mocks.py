@@ -115,8 +115,9 @@ def run_survey(i: int, args, out: Path) -> dict:
     demo = write_demo_inputs(folder, seed=2000 + i, scale=args.survey_scale, progress=False)
     api.run(demo.config, progress=False)
     summary = api.summary(demo.config)["main"]
-    return {"truth": {"alpha_par": demo.truth.alpha_par, "alpha_perp": demo.truth.alpha_perp},
-            "summary": summary["summary"], "z_eff": summary.get("z_eff")}
+    truth = demo.truth_at(summary["z_eff"])
+    return {"truth": {"alpha_par": truth.alpha_par, "alpha_perp": truth.alpha_perp},
+            "summary": summary["summary"], "z_eff": summary["z_eff"]}
 
 
 def report(name: str, rows: list[dict]) -> dict:
