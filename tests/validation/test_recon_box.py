@@ -13,25 +13,10 @@ import numpy as np
 import pytest
 
 from corrpipe import mesh, recon
-from corrpipe.cosmology import preset
-from corrpipe.mocks.box import linear_density
-from corrpipe.theory.linear_power import LinearPower
 
 BOX = 1000.0
 N_LATTICE = 128
 Z = 0.5
-
-
-def _zeldovich_lattice(seed: int, n: int = N_LATTICE, box: float = BOX, z: float = Z):
-    """Lagrangian lattice q, displacement psi(q) (N, 3), linear field on the mesh, f."""
-    cosmo = preset("planck2018")
-    power = LinearPower.eisenstein_hu(cosmo, z=z)
-    delta = linear_density(power, box, n, seed)      # the mocks' own linear field
-    psi_mesh = mesh.displacement(delta, box)
-    q1 = np.arange(n) * box / n
-    q = np.stack(np.meshgrid(q1, q1, q1, indexing="ij"), -1).reshape(-1, 3)
-    psi = psi_mesh.reshape(3, -1).T.copy()
-    return q, psi, psi_mesh, float(cosmo.growth_rate(z))
 
 
 def _cross_coefficient(a: np.ndarray, b: np.ndarray, box: float, k_edges: np.ndarray):
@@ -54,8 +39,8 @@ def _cross_coefficient(a: np.ndarray, b: np.ndarray, box: float, k_edges: np.nda
 
 
 @pytest.fixture(scope="module")
-def mock():
-    return _zeldovich_lattice(seed=2026)
+def mock(make_zeldovich_lattice):
+    return make_zeldovich_lattice(2026, n=N_LATTICE, box=BOX, z=Z)
 
 
 @pytest.mark.slow

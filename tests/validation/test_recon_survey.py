@@ -14,7 +14,6 @@ import numpy as np
 import pytest
 
 from corrpipe import mesh, recon
-from test_recon_box import _zeldovich_lattice
 
 N_LATTICE = 96
 SIDE = 800.0
@@ -23,8 +22,8 @@ K_EDGES = np.array([0.01, 0.05, 0.07, 0.1])
 
 
 @pytest.fixture(scope="module")
-def survey_mock():
-    q, psi, _, f = _zeldovich_lattice(7, n=N_LATTICE, box=SIDE, z=0.5)
+def survey_mock(make_zeldovich_lattice):
+    q, psi, _, f = make_zeldovich_lattice(7, n=N_LATTICE, box=SIDE, z=0.5)
     shift = np.array([-SIDE / 2, -SIDE / 2, DISTANCE - SIDE / 2])
     x = q + psi + shift
     rhat = x / np.linalg.norm(x, axis=1)[:, None]
