@@ -168,6 +168,7 @@ n_mu = 40
 kind = "jackknife"
 regions = "kmeans"
 n_regions = 100
+jackknife_weighting = "mohammad_percival"   # calibrated against mocks (scripts/calibrate_jackknife.py)
 
 [fit]
 analysis = "anisotropic"
