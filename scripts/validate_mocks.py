@@ -27,7 +27,8 @@ few hours on 2 cores, best on a bigger machine)::
     python scripts/validate_mocks.py --n-box 50 --n-survey 50 --box-size 1500 --box-mesh 384 \
         --survey-scale large --out validate_runs
 
-Everything is written below ``--out`` (one folder per mock); rerunning skips the pipeline
+Everything is written below ``--out`` (one folder per mock, ``validation.json`` and a plot
+``validation_{box,survey}.png`` of the intervals and pulls); rerunning skips the pipeline
 stages that are already up to date.
 
 Measured on 2026-12-01 (internal numbers, 2 loaded cores, ``--n-box 10 --n-survey 10
@@ -151,6 +152,42 @@ def report(name: str, rows: list[dict]) -> dict:
     return stats
 
 
+def plot_batch(name: str, rows: list[dict], path: Path) -> None:
+    """Per-mock 68% intervals against the truth, and the pulls against a unit Gaussian."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(11.0, 3.6), layout="constrained")
+    axes = fig.subplots(1, 3)
+    pulls_all = {}
+    for ax, p in zip(axes[:2], PARAMS):
+        med = np.array([r["summary"][p]["median"] for r in rows])
+        lo = np.array([r["summary"][p]["p16"] for r in rows])
+        hi = np.array([r["summary"][p]["p84"] for r in rows])
+        truth = np.array([r["truth"][p] for r in rows])
+        i = np.arange(len(rows))
+        covered = (lo <= truth) & (truth <= hi)
+        for mask, colour, label in ((covered, "tab:blue", "covers truth"),
+                                    (~covered, "tab:red", "misses truth")):
+            if mask.any():
+                ax.errorbar(i[mask], med[mask], yerr=[med[mask] - lo[mask], hi[mask] - med[mask]],
+                            fmt="o", ms=3, color=colour, label=label)
+        ax.plot(i, truth, "k-", lw=1, label="truth")
+        ax.set_xlabel("mock")
+        ax.set_ylabel(p)
+        ax.legend(fontsize=7)
+        pulls_all[p] = (med - truth) / (0.5 * (hi - lo))
+    ax = axes[2]
+    bins = np.linspace(-3.5, 3.5, 15)
+    for p, colour in zip(PARAMS, ("tab:blue", "tab:orange")):
+        ax.hist(pulls_all[p], bins=bins, histtype="step", color=colour, density=True, label=p)
+    x = np.linspace(-3.5, 3.5, 200)
+    ax.plot(x, np.exp(-0.5 * x**2) / np.sqrt(2 * np.pi), "k--", lw=1, label="unit Gaussian")
+    ax.set_xlabel("(median - truth) / sigma")
+    ax.legend(fontsize=7)
+    fig.suptitle(f"{name} batch: {len(rows)} mocks")
+    fig.savefig(path, dpi=110)
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--n-box", type=int, default=10, help="box mocks (0: skip)")
@@ -178,6 +215,8 @@ def main(argv=None) -> int:
                   f"({time.perf_counter() - t0:.0f} s)", flush=True)
         if rows:
             results[name] = {"mocks": rows, "stats": report(name, rows)}
+            plot_batch(name, rows, args.out / f"validation_{name}.png")
+            print(f"plot: {args.out / f'validation_{name}.png'}")
     (args.out / "validation.json").write_text(json.dumps(results, indent=2, default=float))
     return 0
 
