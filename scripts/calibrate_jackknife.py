@@ -38,6 +38,7 @@ import numpy as np
 
 from corrpipe.config import load_config
 from corrpipe.covariance import hartlap_factor, jackknife_from_counts
+from corrpipe.errors import CorrpipeError
 from corrpipe.fit.run import build_likelihood
 from corrpipe.stages import read_counts
 
@@ -55,6 +56,13 @@ def load_mock(config_path: str) -> dict:
     cfg = load_config(config_path)
     a = cfg.analyses[0]
     folder = cfg.analysis_folder(a)
+    missing = [n for n in ("estimate.h5", "counts.h5") if not (folder / n).exists()]
+    if missing:
+        raise SystemExit(f"{config_path}: no {', '.join(missing)} in {folder}; run the "
+                         "pipeline on this mock first (corrpipe run CONFIG --until estimate)")
+    if a.covariance.kind != "jackknife":
+        raise SystemExit(f"{config_path}: [covariance] kind = '{a.covariance.kind}'; the "
+                         "counts of a jackknife run are needed")
     with h5py.File(folder / "estimate.h5", "r") as h5:
         s = h5["estimate/s"][()]
         ells = [int(e) for e in h5["estimate"].attrs["ells"]]
@@ -112,7 +120,10 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     if len(args.configs) < 3:
         ap.error("need at least 3 finished mock runs")
-    mocks = [load_mock(c) for c in args.configs]
+    try:
+        mocks = [load_mock(c) for c in args.configs]
+    except CorrpipeError as exc:
+        raise SystemExit(f"error: {exc}") from None
     x = np.array([m["vector"] for m in mocks])
     n, p = x.shape
     labels = mocks[0]["labels"]
