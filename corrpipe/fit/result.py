@@ -101,6 +101,10 @@ class FitResult:
         chi^2 profile over alpha_iso (grid, delta chi^2, crossing errors).
     data : dict
         s, ells, data vector, errors, best-fit model (with and without broadband).
+    diagnostics : dict
+        ``bao_detection`` (chi^2 against a no-BAO template, significance) and
+        ``prior_edges`` (posterior mass next to the alpha prior bounds); see
+        :func:`corrpipe.fit.run.bao_detection` and :func:`corrpipe.fit.run.prior_edges`.
     """
 
     name: str
@@ -125,6 +129,7 @@ class FitResult:
     profile: dict | None = None
     settings: dict = field(default_factory=dict)
     data: dict = field(default_factory=dict)
+    diagnostics: dict = field(default_factory=dict)
 
     @property
     def converged(self) -> bool:
@@ -159,6 +164,7 @@ class FitResult:
             "variance_factor_m1": self.variance_factor,
             "precision_factor": self.precision_factor,
             "fit_range": [self.settings.get("s_min"), self.settings.get("s_max")],
+            "diagnostics": self.diagnostics,
             "schema_version": SCHEMA_VERSION,
         })
 
@@ -212,7 +218,8 @@ class FitResult:
                        variance_factor=d["variance_factor_m1"],
                        precision_factor=d["precision_factor"],
                        correlation_par_perp=d["correlation_alpha_par_alpha_perp"],
-                       profile=profile, settings=settings, data=data)
+                       profile=profile, settings=settings, data=data,
+                       diagnostics=d.get("diagnostics") or {})
         except KeyError as exc:
             raise CheckpointError(f"fit result in {group.file.filename} is incomplete (missing "
                                   f"{exc}); rerun the fit stage") from exc
@@ -233,6 +240,16 @@ class FitResult:
                          f"-{v['error_minus']:.3f}   (fiducial {v['fiducial']:.3f})")
         if self.correlation_par_perp is not None:
             lines.append(f"  corr(alpha_par, alpha_perp) = {self.correlation_par_perp:.3f}")
+        det = self.diagnostics.get("bao_detection")
+        if det:
+            lines.append(f"  BAO detection: Delta chi2 = {det['delta_chi2']:.1f} against a "
+                         f"no-BAO template ({det['significance_sigma']:.1f} sigma)")
+        for k, v in self.diagnostics.get("prior_edges", {}).items():
+            if v["prior_limited"]:
+                lo, hi = v["prior"]
+                lines.append(f"  NOTE: {100 * v['edge_mass']:.0f}% of the {k} posterior lies "
+                             f"next to its prior bounds {lo:g}-{hi:g}; its error depends on "
+                             "the prior (weak BAO detection)")
         if not self.converged:
             lines.append(f"  WARNING: {self.convergence.get('note', 'chain not converged')}")
         return "\n".join(lines)

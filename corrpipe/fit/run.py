@@ -18,6 +18,7 @@ from corrpipe.theory.linear_power import LinearPower
 from corrpipe.theory.template import BAOTemplate
 
 __all__ = ["fit_multipoles", "build_linear_power", "build_likelihood", "best_fit",
+           "bao_detection", "prior_edges",
            "alpha_profile"]
 
 _PENALTY = 1e30
@@ -181,6 +182,73 @@ def _init_scale(like: Likelihood, best: np.ndarray) -> np.ndarray:
     return np.array(scale)
 
 
+def bao_detection(like: Likelihood, best: np.ndarray) -> dict:
+    """chi^2 of the best fit against that of a template without BAO (same data and priors).
+
+    The no-BAO model replaces the linear power by its no-wiggle counterpart (so the template
+    keeps its broadband shape, RSD and damping terms but loses the acoustic feature) and is
+    fitted over the same parameters. sqrt(Delta chi^2) is the usual detection significance
+    (common practice, e.g. Eisenstein et al. 2005 [from memory]).
+
+    Returns
+    -------
+    dict
+        ``chi2_bao``, ``chi2_no_bao``, ``delta_chi2`` and ``significance_sigma``
+        (sqrt of Delta chi^2, 0 when the no-BAO model fits as well).
+    """
+    import dataclasses
+
+    lp = like.template.linear_power
+    smooth = dataclasses.replace(lp, power=np.array(lp.power_nowiggle, copy=True),
+                                 source=f"{lp.source} without BAO")
+    # like.s already holds only the fitted bins
+    settings = dataclasses.replace(like.settings, sigma_prior_width=0.0,
+                                   s_min=float(like.s[0]), s_max=float(like.s[-1]))
+    template = BAOTemplate.from_settings(smooth, settings)
+    wedges = like.wedges
+    plain = Likelihood(like.s, like.data, like.covariance,
+                       like.ells if wedges is None else (), template, settings,
+                       precision_factor=like.precision_factor, wedges=wedges)
+    chi2_bao = like.chi2(best)
+    chi2_none = plain.chi2(best_fit(plain))
+    delta = chi2_none - chi2_bao
+    return {"chi2_bao": float(chi2_bao), "chi2_no_bao": float(chi2_none),
+            "delta_chi2": float(delta), "significance_sigma": float(np.sqrt(max(delta, 0.0)))}
+
+
+def prior_edges(like: Likelihood, samples: np.ndarray, edge_fraction: float = 0.05,
+                limit: float = 0.10) -> dict:
+    """How much of each dilation's posterior sits next to its flat prior bounds.
+
+    Parameters
+    ----------
+    like : Likelihood
+    samples : ndarray, shape (n_samples, n_dim)
+        Posterior samples in ``like.names`` order.
+    edge_fraction : float
+        Width of the strip next to each bound, as a fraction of the prior range.
+    limit : float
+        Posterior mass in the two strips above which the parameter is flagged.
+
+    Returns
+    -------
+    dict
+        Per sampled dilation (alpha, epsilon, alpha_par, alpha_perp): ``edge_mass`` and
+        ``prior_limited`` (True when the prior, not the data, bounds the posterior, so the
+        quoted error depends on the prior range; common practice).
+    """
+    out = {}
+    for i, p in enumerate(like.parameters):
+        if p.name not in ("alpha", "epsilon", "alpha_par", "alpha_perp"):
+            continue
+        strip = edge_fraction * (p.high - p.low)
+        x = samples[:, i]
+        mass = float(np.mean((x < p.low + strip) | (x > p.high - strip)))
+        out[p.name] = {"edge_mass": mass, "prior_limited": bool(mass > limit),
+                       "prior": [float(p.low), float(p.high)]}
+    return out
+
+
 def fit_multipoles(s, data_vector, covariance, ells: Sequence[int], *, cosmology: Any,
                    z_eff: float, settings: FitSettings = FitSettings(),
                    progress_path: str | Path | None = None, progress: bool = True,
@@ -255,9 +323,12 @@ def fit_multipoles(s, data_vector, covariance, ells: Sequence[int], *, cosmology
         alpha_iso = dilations_from_samples(like.names, chain.samples())["alpha"]
         profile = alpha_profile(like, ml, settings.profile_points,
                                 half_width=5.0 * float(np.std(alpha_iso)))
-    return summarise(like, chain, ml, profile, cosmology=cosmology, z_eff=z_eff,
-                     covariance_type=covariance_type, variance_factor=variance_factor,
-                     name=name)
+    result = summarise(like, chain, ml, profile, cosmology=cosmology, z_eff=z_eff,
+                       covariance_type=covariance_type, variance_factor=variance_factor,
+                       name=name)
+    result.diagnostics = {"bao_detection": bao_detection(like, ml),
+                          "prior_edges": prior_edges(like, chain.samples())}
+    return result
 
 
 def summarise(like: Likelihood, chain, ml: np.ndarray, profile: dict | None, *,

@@ -69,3 +69,13 @@ def survey_run(tmp_path):
     cfg = tmp_path / "run.toml"
     cfg.write_text(BASE_CONFIG)
     return cfg
+
+
+@pytest.fixture
+def survey_inputs():
+    """(BASE_CONFIG text, write_poisson_survey) for tests that vary the catalogue or config.
+
+    A fixture rather than ``from conftest import ...``: several test folders have a
+    conftest.py, and the module name ``conftest`` refers to whichever was loaded last.
+    """
+    return BASE_CONFIG, write_poisson_survey

@@ -74,9 +74,8 @@ def test_refit_refuses_without_counts(survey_run):
         api.refit(survey_run, progress=False)
 
 
-def test_sigkill_during_counts_then_resume_matches(tmp_path):
-    from conftest import BASE_CONFIG, write_poisson_survey
-
+def test_sigkill_during_counts_then_resume_matches(tmp_path, survey_inputs):
+    BASE_CONFIG, write_poisson_survey = survey_inputs
     write_poisson_survey(tmp_path, n=8000, seed=5)
     text = BASE_CONFIG.replace("size_factor = 3", "size_factor = 4")
     cfg = tmp_path / "run.toml"

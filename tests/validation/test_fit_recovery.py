@@ -113,6 +113,9 @@ def test_outputs_round_trip_and_variance_factor(anisotropic, tmp_path):
     assert back.to_dict() == res.to_dict()
     text = json.dumps(res.to_dict())
     assert '"DV_over_rd"' in text and '"converged": true' in text
+    assert back.diagnostics == res.diagnostics and res.diagnostics["bao_detection"]
+    assert "BAO detection: Delta chi2 =" in res.text_summary()
+    assert not res.diagnostics["prior_edges"]["alpha_par"]["prior_limited"]
     like = build_likelihood(S, d, cov, (0, 2), cosmology=COSMO, z_eff=Z,
                             linear_power=_lp())
     chain = ChainResult(chain=res.chain, log_prob=res.log_prob,
@@ -200,3 +203,65 @@ def test_plots_build(anisotropic, tmp_path):
     fig = plot_posterior(res)
     assert len(fig.axes) == 4
     fig.savefig(tmp_path / "posterior.png")
+
+
+def test_bao_detection_against_a_no_bao_template():
+    # Detection significance = sqrt(chi2_noBAO - chi2_BAO) (common practice, e.g. Eisenstein
+    # et al. 2005 [from memory]). Noise-free data: the BAO model fits exactly, so Delta chi^2
+    # is the no-BAO model's chi^2 and, with the priors negligible, grows as the inverse of
+    # the covariance scale (4x smaller covariance -> 4x Delta chi^2, i.e. 2x significance;
+    # linear-Gaussian scaling, common practice). Data drawn from the no-BAO template itself
+    # are fitted exactly by it, so they show no detection.
+    from corrpipe.fit.run import bao_detection, best_fit
+
+    d, cov = _realistic((0, 2), 1.02, 0.99)
+    st = FitSettings()
+    out = []
+    for scale in (1.0, 0.25):
+        like = build_likelihood(S, d, cov * scale, (0, 2), cosmology=COSMO, z_eff=Z,
+                                settings=st, linear_power=_lp())
+        out.append(bao_detection(like, best_fit(like)))
+    assert out[0]["chi2_bao"] < 1e-3
+    assert out[0]["delta_chi2"] == pytest.approx(out[0]["chi2_no_bao"] - out[0]["chi2_bao"])
+    assert out[0]["significance_sigma"] > 5  # BOSS-like precision: a clear detection
+    assert out[1]["delta_chi2"] == pytest.approx(4 * out[0]["delta_chi2"], rel=0.05)
+    assert out[1]["significance_sigma"] == pytest.approx(2 * out[0]["significance_sigma"],
+                                                         rel=0.03)
+
+    smooth = dataclasses.replace(_lp(), power=_lp().power_nowiggle.copy())
+    tpl = BAOTemplate(smooth)
+    d_nw = tpl.multipoles(S, 1.02, 0.99, (0, 2), B=1.3, beta=0.4, sigma_par=10.0,
+                          sigma_perp=6.0, sigma_s=4.0).ravel()
+    like = build_likelihood(S, d_nw, cov, (0, 2), cosmology=COSMO, z_eff=Z, settings=st,
+                            linear_power=_lp())
+    none = bao_detection(like, best_fit(like))
+    assert none["chi2_no_bao"] < 1e-2 and none["significance_sigma"] == 0.0
+
+
+def test_prior_edge_mass_against_scipy_truncnorm():
+    # Posterior mass within 5 % of the prior range of each bound, compared with the
+    # probabilities of scipy.stats.truncnorm for the same truncated Gaussians.
+    from scipy import stats
+
+    from corrpipe.fit.run import prior_edges
+
+    d, cov = _realistic((0, 2), 1.0, 1.0)
+    like = build_likelihood(S, d, cov, (0, 2), cosmology=COSMO, z_eff=Z, settings=FitSettings(),
+                            linear_power=_lp())
+    lo, hi = like.parameters[0].low, like.parameters[0].high
+    strip = 0.05 * (hi - lo)
+    rng = np.random.default_rng(5)
+    n = 200_000
+    cols = []
+    expect = []
+    for centre, width in ((1.0, 0.02), (0.82, 0.08)):
+        a, b = (lo - centre) / width, (hi - centre) / width
+        dist = stats.truncnorm(a, b, loc=centre, scale=width)
+        cols.append(dist.rvs(n, random_state=rng))
+        expect.append(dist.cdf(lo + strip) + dist.sf(hi - strip))
+    samples = np.column_stack(cols + [np.ones(n)] * (like.n_dim - 2))
+    got = prior_edges(like, samples)
+    assert got["alpha_par"]["edge_mass"] == pytest.approx(expect[0], abs=1e-3)
+    assert got["alpha_perp"]["edge_mass"] == pytest.approx(expect[1], abs=5e-3)
+    assert not got["alpha_par"]["prior_limited"] and got["alpha_perp"]["prior_limited"]
+    assert set(got) == {"alpha_par", "alpha_perp"}
