@@ -118,12 +118,16 @@ def _summary_text(cfg: RunConfig, analysis) -> str:
     return path.read_text().rstrip() if path.exists() else ""
 
 
-def demo(output: str | Path = "corrpipe_demo", *, seed: int = 7, progress: bool = True,
-         echo: Echo = print) -> dict:
-    """Generate the built-in demo survey, run the whole pipeline, print truth vs recovered."""
+def demo(output: str | Path = "corrpipe_demo", *, seed: int = 7, scale: str = "demo",
+         progress: bool = True, echo: Echo = print) -> dict:
+    """Generate the built-in demo survey, run the whole pipeline, print truth vs recovered.
+
+    ``scale`` is one of :data:`corrpipe.demo.SCALES` ("demo" by default, "large" for a
+    survey with a clear BAO detection per realisation).
+    """
     from corrpipe.stages import run_demo
 
-    return run_demo(Path(output), seed=seed, progress=progress, echo=echo)
+    return run_demo(Path(output), seed=seed, scale=scale, progress=progress, echo=echo)
 
 
 def write_mocks(config: str | Path, output: str | Path | None = None, *, progress: bool = True,

@@ -81,6 +81,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--output", type=Path, default=Path("corrpipe_demo"),
                    help="folder for the demo inputs and results (default: ./corrpipe_demo)")
     p.add_argument("--seed", type=int, default=7, help="seed of the demo survey")
+    p.add_argument("--size", choices=("demo", "large"), default="demo",
+                   help="demo: ~60k galaxies, about a minute, a weak (~2 sigma) BAO detection "
+                        "per survey; large: ~200k galaxies over ~3000 deg^2, a few minutes, "
+                        "a clear detection")
 
     p = sub.add_parser("mock", help="write box or survey mock catalogues from a TOML file")
     p.add_argument("config", type=Path, help="TOML file with a [mock] table")
@@ -144,7 +148,7 @@ def _dispatch(args: argparse.Namespace) -> int:
             api.refit(args.config, analyses=args.analysis, progress=progress, echo=print)
         return 0
     if args.command == "demo":
-        api.demo(args.output, seed=args.seed, progress=progress, echo=print)
+        api.demo(args.output, seed=args.seed, scale=args.size, progress=progress, echo=print)
         return 0
     if args.command == "mock":
         api.write_mocks(args.config, args.output, progress=progress, echo=print)

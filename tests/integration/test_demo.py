@@ -39,3 +39,17 @@ def test_demo_prints_truth_against_recovered(tmp_path):
         rec = out["recovered"][key]
         # the demo claims recovery: fixed seed, so this is deterministic (3 sigma, issue 6)
         assert abs(rec["median"] - rec["truth"]) < 3 * rec["error"], (key, rec)
+
+
+def test_demo_command_passes_its_size(monkeypatch, tmp_path):
+    # CLI wiring (common practice): --size reaches api.demo; an unknown size is refused
+    from corrpipe import api
+    from corrpipe.cli import main
+
+    seen = {}
+    monkeypatch.setattr(api, "demo", lambda output, **kw: seen.update(kw, output=output))
+    assert main(["demo", "--output", str(tmp_path / "d"), "--size", "large", "-q"]) == 0
+    assert seen["scale"] == "large" and seen["seed"] == 7
+    with pytest.raises(SystemExit) as exc:
+        main(["demo", "--size", "huge"])
+    assert exc.value.code == 2
