@@ -122,8 +122,8 @@ def demo(output: str | Path = "corrpipe_demo", *, seed: int = 7, scale: str = "d
          progress: bool = True, echo: Echo = print) -> dict:
     """Generate the built-in demo survey, run the whole pipeline, print truth vs recovered.
 
-    ``scale`` is one of :data:`corrpipe.demo.SCALES` ("demo" by default, "large" for a
-    survey with a clear BAO detection per realisation).
+    ``scale`` is one of :data:`corrpipe.demo.SCALES` ("demo" by default: median BAO detection
+    about 2 sigma per realisation; "large": about 3 sigma).
     """
     from corrpipe.stages import run_demo
 

@@ -83,8 +83,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=7, help="seed of the demo survey")
     p.add_argument("--size", choices=("demo", "large"), default="demo",
                    help="demo: ~60k galaxies, about a minute, a weak (~2 sigma) BAO detection "
-                        "per survey; large: ~200k galaxies over ~3000 deg^2, a few minutes, "
-                        "a clear detection")
+                        "per survey; large: ~200k galaxies over ~2700 deg^2, a few minutes, "
+                        "a ~3 sigma detection (median over realisations)")
 
     p = sub.add_parser("mock", help="write box or survey mock catalogues from a TOML file")
     p.add_argument("config", type=Path, help="TOML file with a [mock] table")
