@@ -34,9 +34,9 @@ stages that are already up to date.
 Measured on 2026-12-02 (internal numbers, 2 cores; Zel'dovich mocks; jackknife with the
 Mohammad & Percival weighting):
 
-* box, 50 mocks, ``--box-mesh 128 --box-nbar 1e-4`` (truth 1.05 / 0.97, analytic
-  covariance; ~15 s per mock): mean bias -0.02 / +0.18 sigma, 68% coverage 84% / 72%,
-  scatter 0.062 / 0.044 vs mean error 0.097 / 0.057; median BAO detection 2.4 sigma.
+* box, 100 mocks, ``--box-mesh 128 --box-nbar 1e-4`` (truth 1.05 / 0.97, analytic
+  covariance; ~10-15 s per mock): mean bias -0.11 / +0.13 sigma, 68% coverage 85% / 71%,
+  scatter 0.060 / 0.047 vs mean error 0.091 / 0.054; median BAO detection 2.6 sigma.
 * survey, "demo" scale, 20 mocks (~45 s per mock): mean bias +0.18 / +0.05 sigma, coverage
   75% / 85%, scatter 0.068 / 0.042 vs mean error 0.103 / 0.073; median detection 1.8 sigma,
   so most posteriors are non-Gaussian and bounded by the 0.8-1.2 prior (over-coverage).
