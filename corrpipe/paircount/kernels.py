@@ -125,6 +125,24 @@ def cell_pair_costs(start1, start2, shape, offsets, kinds, periodic):
 
 
 @njit(cache=True, inline="always")
+def _cell_bounds(c, origin, side, tol, ny, nz):
+    """Corners (lo x, y, z, hi x, y, z) of flat cell ``c``, widened by ``tol`` each way."""
+    lox = origin[0] + (c // (ny * nz)) * side[0] - tol
+    loy = origin[1] + ((c // nz) % ny) * side[1] - tol
+    loz = origin[2] + (c % nz) * side[2] - tol
+    return lox, loy, loz, lox + side[0] + 2 * tol, loy + side[1] + 2 * tol, loz + side[2] + 2 * tol
+
+
+@njit(cache=True, inline="always")
+def _beyond(x, y, z, lox, loy, loz, hix, hiy, hiz, q_hi):
+    """True when the point is at least sqrt(q_hi) from the box, so no pair with it counts."""
+    ex = max(lox - x, 0.0, x - hix)
+    ey = max(loy - y, 0.0, y - hiy)
+    ez = max(loz - z, 0.0, z - hiz)
+    return ex * ex + ey * ey + ez * ez >= q_hi
+
+
+@njit(cache=True, inline="always")
 def _wrap(d, box, half):
     """Minimum-image component (branch-free); |d| < box on input."""
     return d + box * ((d < -half) * 1.0 - (d > half) * 1.0)
@@ -172,22 +190,13 @@ def _count_unit(c_lo, c_hi, x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, 
             if b0 == b1:
                 continue
             prune = (not periodic) and kind != 1
-            lox = origin[0] + (c2 // (ny * nz)) * side[0] - tol
-            loy = origin[1] + ((c2 // nz) % ny) * side[1] - tol
-            loz = origin[2] + (c2 % nz) * side[2] - tol
-            hix = lox + side[0] + 2 * tol
-            hiy = loy + side[1] + 2 * tol
-            hiz = loz + side[2] + 2 * tol
+            lox, loy, loz, hix, hiy, hiz = _cell_bounds(c2, origin, side, tol, ny, nz)
             for i in range(a0, a1):
                 xi = x1[i]
                 yi = y1[i]
                 zi = z1[i]
-                if prune:
-                    ex = max(lox - xi, 0.0, xi - hix)
-                    ey = max(loy - yi, 0.0, yi - hiy)
-                    ez = max(loz - zi, 0.0, zi - hiz)
-                    if ex * ex + ey * ey + ez * ez >= q_hi:
-                        continue
+                if prune and _beyond(xi, yi, zi, lox, loy, loz, hix, hiy, hiz, q_hi):
+                    continue
                 jlo = i + 1 if kind == 1 else b0
                 # pass 1, branch-free: keep the candidates within [q_lo, q_hi)
                 m = 0
@@ -344,22 +353,13 @@ def _count_unit_smu_uniform(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, 
             if b0 == b1:
                 continue
             prune = (not periodic) and kind != 1
-            lox = origin[0] + (c2 // (ny * nz)) * side[0] - tol
-            loy = origin[1] + ((c2 // nz) % ny) * side[1] - tol
-            loz = origin[2] + (c2 % nz) * side[2] - tol
-            hix = lox + side[0] + 2 * tol
-            hiy = loy + side[1] + 2 * tol
-            hiz = loz + side[2] + 2 * tol
+            lox, loy, loz, hix, hiy, hiz = _cell_bounds(c2, origin, side, tol, ny, nz)
             for i in range(a0, a1):
                 xi = x1[i]
                 yi = y1[i]
                 zi = z1[i]
-                if prune:
-                    ex = max(lox - xi, 0.0, xi - hix)
-                    ey = max(loy - yi, 0.0, yi - hiy)
-                    ez = max(loz - zi, 0.0, zi - hiz)
-                    if ex * ex + ey * ey + ez * ez >= q_hi:
-                        continue
+                if prune and _beyond(xi, yi, zi, lox, loy, loz, hix, hiy, hiz, q_hi):
+                    continue
                 jlo = i + 1 if kind == 1 else b0
                 m = 0
                 if periodic:
@@ -497,22 +497,13 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
             if b0 == b1:
                 continue
             prune = (not periodic) and kind != 1
-            lox = origin[0] + (c2 // (ny * nz)) * side[0] - tol
-            loy = origin[1] + ((c2 // nz) % ny) * side[1] - tol
-            loz = origin[2] + (c2 % nz) * side[2] - tol
-            hix = lox + side[0] + 2 * tol
-            hiy = loy + side[1] + 2 * tol
-            hiz = loz + side[2] + 2 * tol
+            lox, loy, loz, hix, hiy, hiz = _cell_bounds(c2, origin, side, tol, ny, nz)
             for i in range(a0, a1):
                 xi = x1[i]
                 yi = y1[i]
                 zi = z1[i]
-                if prune:
-                    ex = max(lox - xi, 0.0, xi - hix)
-                    ey = max(loy - yi, 0.0, yi - hiy)
-                    ez = max(loz - zi, 0.0, zi - hiz)
-                    if ex * ex + ey * ey + ez * ez >= q_hi:
-                        continue
+                if prune and _beyond(xi, yi, zi, lox, loy, loz, hix, hiy, hiz, q_hi):
+                    continue
                 jlo = np.uint64(i + 1 if kind == 1 else b0)
                 n_true = b1 - np.int64(jlo)
                 # round the trip count up to whole SIMD blocks (no scalar remainder); the
