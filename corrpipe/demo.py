@@ -62,16 +62,22 @@ def _nz_table(z_min: float, z_max: float, peak: float):
     return tuple(float(v) for v in z), tuple(float(v) for v in n)
 
 
-def demo_settings(scale: str = "demo", seed: int = 7) -> MockSettings:
-    """The mock definition of the demo survey at one of :data:`SCALES`."""
+def demo_settings(scale: str = "demo", seed: int = 7, *,
+                  fiducial_truth: bool = False) -> MockSettings:
+    """The mock definition of the demo survey at one of :data:`SCALES`.
+
+    With ``fiducial_truth`` the mock is made in the analysis' fiducial cosmology instead of
+    the demo's true one, so the expected dilation is exactly 1 (a null test for validation).
+    """
     if scale not in SCALES:
         raise InputError(f"unknown demo scale {scale!r}; choose one of {sorted(SCALES)}")
     p = SCALES[scale]
     z_nodes, n_nodes = _nz_table(p["z_min"], p["z_max"], p["peak"])
+    truth = {} if fiducial_truth else dict(true_h=_TRUE_H, true_omega_m=_TRUE_OMEGA_M,
+                                           true_omega_b=_OMEGA_B_H2 / _TRUE_H**2)
     return MockSettings(kind="zeldovich", geometry="survey", seed=int(seed),
                         box_size=p["box_size"], n_mesh=p["n_mesh"], nbar=p["peak"],
-                        bias=1.9, redshift=0.45, true_h=_TRUE_H, true_omega_m=_TRUE_OMEGA_M,
-                        true_omega_b=_OMEGA_B_H2 / _TRUE_H**2, observer=(0.0, 0.0, 0.0),
+                        bias=1.9, redshift=0.45, **truth, observer=(0.0, 0.0, 0.0),
                         z_min=p["z_min"], z_max=p["z_max"], footprint=p["footprint"],
                         nz_redshifts=z_nodes, nz_densities=n_nodes, randoms_factor=8.0,
                         format="fits", name="halcyon_fen_wide")
@@ -178,7 +184,8 @@ s_max = 150.0
 
 
 def write_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
-                      progress: bool = True, overwrite: bool = True) -> DemoInputs:
+                      progress: bool = True, overwrite: bool = True,
+                      fiducial_truth: bool = False) -> DemoInputs:
     """Make the demo survey and write its catalogues, truth and pipeline config.
 
     Parameters
@@ -193,6 +200,8 @@ def write_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
         Progress bars while drawing the mock.
     overwrite : bool
         Replace files from an earlier call.
+    fiducial_truth : bool
+        Make the mock in the fiducial cosmology (truth alpha = 1), see :func:`demo_settings`.
 
     Returns
     -------
@@ -203,7 +212,7 @@ def write_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
     start = time.perf_counter()
     folder = Path(out_dir)
     folder.mkdir(parents=True, exist_ok=True)
-    settings = demo_settings(scale, seed)
+    settings = demo_settings(scale, seed, fiducial_truth=fiducial_truth)
     settings.validate()
     cosmo = true_cosmology(settings)
     fid = preset("planck2018")
@@ -229,7 +238,8 @@ def write_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
     config_path = folder / "demo.toml"
     config_path.write_text(text)
     truth_doc = {"survey": SURVEY_NAME, "tracer": TRACER, "fictional": True,
-                 "scale": scale, "seed": int(seed), "n_galaxies": len(sky),
+                 "scale": scale, "seed": int(seed), "fiducial_truth": bool(fiducial_truth),
+                 "n_galaxies": len(sky),
                  "n_randoms": n_rand, "area_deg2": footprint.area_deg2(),
                  "truth": truth.as_dict(),
                  "true_cosmology": dataclasses.asdict(cosmo),

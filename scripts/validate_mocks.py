@@ -132,15 +132,21 @@ def run_survey(i: int, args, out: Path) -> dict:
     folder = out / f"survey_{i:03d}"
     seed = 2000 + i
     config = folder / "demo.toml"
+    fiducial_truth = args.survey_truth == "fiducial"
     if args.reuse_inputs and config.exists() and (folder / "truth.json").exists():
         # the pipeline still checks the files against the digests its stages recorded
-        settings = demo_settings(args.survey_scale, seed)
+        if json.loads((folder / "truth.json").read_text()).get("fiducial_truth",
+                                                                False) != fiducial_truth:
+            raise SystemExit(f"--reuse-inputs: {folder} holds a mock made with a different "
+                             f"--survey-truth; use another --out or drop --reuse-inputs")
+        settings = demo_settings(args.survey_scale, seed, fiducial_truth=fiducial_truth)
         cosmo, fid = true_cosmology(settings), preset("planck2018")
 
         def truth_at(z):
             return expected_dilation(cosmo, fid, z)
     else:
-        demo = write_demo_inputs(folder, seed=seed, scale=args.survey_scale, progress=False)
+        demo = write_demo_inputs(folder, seed=seed, scale=args.survey_scale, progress=False,
+                                 fiducial_truth=fiducial_truth)
         config, truth_at = demo.config, demo.truth_at
     run_pipeline(config, args.refit)
     summary = api.summary(config)["main"]
@@ -272,6 +278,9 @@ def main(argv=None) -> int:
     ap.add_argument("--box-nbar", type=float, default=2e-4, help="box density, (h/Mpc)^3")
     ap.add_argument("--survey-scale", default="demo", choices=("test", "demo", "large"),
                     help="size of the demo-survey mocks")
+    ap.add_argument("--survey-truth", default="demo", choices=("demo", "fiducial"),
+                    help="cosmology the survey mocks are made in: the demo's true one "
+                         "(alpha != 1) or the fiducial (a null test, alpha = 1)")
     ap.add_argument("--out", type=Path, default=Path("validate_mocks_runs"),
                     help="working folder")
     ap.add_argument("--reuse-inputs", action="store_true",

@@ -320,6 +320,25 @@ def test_demo_inputs_are_a_loadable_survey_with_known_truth(tmp_path):
     np.testing.assert_array_equal(Table.read(again.data)["Z"], Table.read(d.data)["Z"])
 
 
+
+def test_demo_with_fiducial_truth_is_a_null_test():
+    # The validation null test: made in the fiducial cosmology, the expected dilation is 1
+    # (alpha = ratio of D/r_d in the same cosmology; REFERENCES sec. 7 definitions) and only
+    # the cosmology changes, not the survey.
+    import dataclasses
+
+    from corrpipe.cosmology import preset
+    from corrpipe.demo import demo_settings
+    from corrpipe.mocks import true_cosmology
+
+    null = demo_settings("large", 5, fiducial_truth=True)
+    assert true_cosmology(null) == preset("planck2018")
+    truth = expected_dilation(true_cosmology(null), preset("planck2018"), 0.5)
+    assert (truth.alpha_par, truth.alpha_perp) == pytest.approx((1.0, 1.0), abs=1e-12)
+    usual = dataclasses.asdict(demo_settings("large", 5))
+    differs = {k for k, v in dataclasses.asdict(null).items() if usual[k] != v}
+    assert differs == {"true_h", "true_omega_m", "true_omega_b"}
+
 @pytest.mark.parametrize("values, match", [
     (dict(nbar=-1e-4), "nbar"),
     (dict(bias=0.0), "bias"),
