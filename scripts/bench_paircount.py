@@ -65,6 +65,20 @@ def _floor_count(x, y, z, start, n_side, s2):
     return per_cell.sum()
 
 
+def cpu_description() -> str:
+    """CPU model and widest vector extension, from /proc/cpuinfo (Linux; else 'unknown')."""
+    try:
+        text = open("/proc/cpuinfo").read()
+    except OSError:
+        return "unknown"
+    model = next((line.split(":", 1)[1].strip() for line in text.splitlines()
+                  if line.startswith("model name")), "unknown")
+    flags = next((set(line.split(":", 1)[1].split()) for line in text.splitlines()
+                  if line.startswith("flags")), set())
+    simd = next((f for f in ("avx512f", "avx2", "avx", "sse4_2") if f in flags), "none listed")
+    return f"{model}, {simd}"
+
+
 def floor_loop(pos: np.ndarray, box: float, s_max: float):
     """Sort into cells of side >= s_max (not timed), then time the naive loop."""
     n_side = max(1, int(box // s_max))
@@ -138,6 +152,7 @@ def main() -> None:
     threads = numba.config.NUMBA_NUM_THREADS
     print(f"machine: {os.cpu_count()} cores, numba threads {threads}; N = {n}, box {BOX:g} Mpc/h, "
           f"s_max {S_MAX:g} Mpc/h, 30 s bins x 100 mu bins")
+    print(f"cpu: {cpu_description()} (the ratios depend on the host CPU's SIMD width)")
     print("load average (1, 5, 15 min) at start: " + ", ".join(f"{v:.2f}" for v in os.getloadavg()))
 
     # warm-up: compile or load every kernel before timing
