@@ -102,12 +102,12 @@ def bao_directions(mocks: list[dict], weighting: str, truth: tuple[float, float]
         t[:2] = a_par, a_perp
         return like.template_model(like.physical(t))
 
-    out, step = {}, 1e-3
+    out, step, Q = {}, 1e-3, like.marginal_precision
     for name, (dp, dt) in (("alpha_iso", (1, 1)), ("alpha_par", (1, 0)),
                            ("alpha_perp", (0, 1))):
         g = (model(truth[0] + step * dp, truth[1] + step * dt)
              - model(truth[0] - step * dp, truth[1] - step * dt)) / (2 * step)
-        out[name] = like._Q @ g / (g @ like._Q @ g)
+        out[name] = Q @ g / (g @ Q @ g)
     return out
 
 

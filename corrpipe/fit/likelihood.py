@@ -222,6 +222,12 @@ class Likelihood:
         self.n_dim = len(self.parameters)
         self._pos = {n: i for i, n in enumerate(self.names)}
 
+    @property
+    def marginal_precision(self) -> np.ndarray:
+        """Precision matrix with the broadband terms profiled out: the metric of the fit's
+        chi^2, ``chi2 = r @ marginal_precision @ r`` for the template residual r (a copy)."""
+        return self._Q.copy()
+
     # ------------------------------------------------------------------ set-up helpers
     def _check_template_range(self) -> None:
         st = self.settings

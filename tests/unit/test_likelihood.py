@@ -76,6 +76,8 @@ def test_marginalised_chi2_equals_explicit_least_squares():
     a, *_ = np.linalg.lstsq(like.design * w[:, None], (like.data - t) * w, rcond=None)
     chi2_ref = np.sum(((like.data - t - like.design @ a) * w) ** 2)
     assert like.chi2(theta) == pytest.approx(chi2_ref, rel=1e-9)
+    r = like.data - t
+    assert r @ like.marginal_precision @ r == pytest.approx(chi2_ref, rel=1e-9)
     np.testing.assert_allclose(like.broadband(theta).ravel(), a, rtol=1e-6, atol=1e-12)
 
 
