@@ -91,10 +91,10 @@ def mean_fit(mocks: list[dict], cov_kind: str, seed: int = 1):
         cov = np.cov(vectors, rowvar=False) / n
         precision_factor = hartlap_factor(n, n_fit_bins)
     else:
-        mats = np.array([m["cov"].matrix for m in mocks])
-        hartlaps = [m["cov"].hartlap if m["cov"].kind != "analytic" else 1.0 for m in mocks]
-        cov = mats.mean(axis=0) / n
-        precision_factor = float(np.mean(hartlaps))
+        # the mean of N per-mock covariances rests on N times as many samples as one of
+        # them, so its inverse needs no Hartlap factor (N * n_regions >> bins)
+        cov = np.mean([m["cov"].matrix for m in mocks], axis=0) / n
+        precision_factor = 1.0
     z_eff = float(np.mean([m["z_eff"] for m in mocks]))
     return fit_multipoles(s, vectors.mean(axis=0), cov, mocks[0]["ells"],
                           cosmology=a.cosmology.build(), z_eff=z_eff, settings=a.fit,

@@ -135,10 +135,12 @@ def run_survey(i: int, args, out: Path) -> dict:
     fiducial_truth = args.survey_truth == "fiducial"
     if args.reuse_inputs and config.exists() and (folder / "truth.json").exists():
         # the pipeline still checks the files against the digests its stages recorded
-        if json.loads((folder / "truth.json").read_text()).get("fiducial_truth",
-                                                                False) != fiducial_truth:
+        doc = json.loads((folder / "truth.json").read_text())
+        if (doc.get("fiducial_truth", False) != fiducial_truth
+                or doc["mock"]["kind"] != args.survey_kind):
             raise SystemExit(f"--reuse-inputs: {folder} holds a mock made with a different "
-                             f"--survey-truth; use another --out or drop --reuse-inputs")
+                             f"--survey-truth or --survey-kind; use another --out or drop "
+                             f"--reuse-inputs")
         settings = demo_settings(args.survey_scale, seed, fiducial_truth=fiducial_truth)
         cosmo, fid = true_cosmology(settings), preset("planck2018")
 
@@ -146,7 +148,7 @@ def run_survey(i: int, args, out: Path) -> dict:
             return expected_dilation(cosmo, fid, z)
     else:
         demo = write_demo_inputs(folder, seed=seed, scale=args.survey_scale, progress=False,
-                                 fiducial_truth=fiducial_truth)
+                                 fiducial_truth=fiducial_truth, kind=args.survey_kind)
         config, truth_at = demo.config, demo.truth_at
     run_pipeline(config, args.refit)
     summary = api.summary(config)["main"]
@@ -281,6 +283,9 @@ def main(argv=None) -> int:
     ap.add_argument("--survey-truth", default="demo", choices=("demo", "fiducial"),
                     help="cosmology the survey mocks are made in: the demo's true one "
                          "(alpha != 1) or the fiducial (a null test, alpha = 1)")
+    ap.add_argument("--survey-kind", default="zeldovich", choices=("zeldovich", "lognormal"),
+                    help="survey mock generator (lognormal: no bulk-flow damping or mode "
+                         "coupling, so no non-linear shift of the BAO)")
     ap.add_argument("--out", type=Path, default=Path("validate_mocks_runs"),
                     help="working folder")
     ap.add_argument("--reuse-inputs", action="store_true",
