@@ -5,13 +5,17 @@ A fit to the mean multipoles of N mocks, with the covariance divided by N, tests
 the pipeline for a bias far below the error of a single mock (a bias that the per-mock
 statistics of ``validate_mocks.py`` cannot resolve). With ``--paired`` it also compares the
 per-mock medians of two configs run on the *same* catalogues (e.g. redshift space against the
-real-space positions of the same galaxies): cosmic variance cancels in the difference, so a
-small systematic difference shows up with a few tens of mocks.
+real-space positions of the same galaxies), and with ``--paired-batch`` the same mocks of
+another batch drawn from the same seeds (e.g. Zel'dovich against lognormal mocks of the same
+initial phases): cosmic variance largely cancels in the difference, so a small systematic
+difference shows up with a few tens of mocks.
 
 Usage (after ``validate_mocks.py --out OUT``)::
 
     python scripts/fit_mock_mean.py OUT --batch survey
     python scripts/fit_mock_mean.py OUT --batch survey --config real.toml --paired demo.toml
+    python scripts/fit_mock_mean.py OUT --batch survey --paired-batch OTHER_OUT
+    python scripts/fit_mock_mean.py OUT --batch survey --predict
 
 ``--config`` names the config file inside each mock folder (default: ``demo.toml`` for survey
 mocks, ``run.toml`` for box mocks); ``--cov scatter`` uses the scatter of the mock vectors
@@ -56,6 +60,49 @@ def read_mock(config_path: Path) -> dict:
             "cov": cov, "z_eff": z_eff, "summary": summary}
 
 
+def mock_settings_of(folder: Path):
+    """The MockSettings a mock folder was drawn with (from its truth file), or None."""
+    import dataclasses
+
+    from corrpipe.mocks import MockSettings
+
+    demo = folder / "truth.json"
+    if demo.exists():
+        raw = json.loads(demo.read_text())["mock"]
+    else:
+        paths = sorted(folder.glob("*_truth.json"))
+        if not paths:
+            return None
+        raw = json.loads(paths[0].read_text())["settings"]
+    names = {f.name for f in dataclasses.fields(MockSettings)}
+    raw = {k: (tuple(tuple(x) if isinstance(x, list) else x for x in v)
+               if isinstance(v, list) else v) for k, v in raw.items() if k in names}
+    return MockSettings(**raw)
+
+
+def prediction_fit(mocks: list[dict], truth: dict, overrides=()):
+    """Fit the Zel'dovich expectation of the batch's mocks with the mean fit's settings."""
+    from corrpipe.fit.run import best_fit, build_likelihood
+    from corrpipe.mocks import zeldovich_expectation
+
+    settings = mock_settings_of(mocks[0]["folder"])
+    if settings is None or settings.kind != "zeldovich":
+        return None
+    m0 = mocks[0]
+    a = m0["analysis"]
+    fit = fit_settings(a, list(overrides))
+    vector = zeldovich_expectation(settings, m0["s"], m0["ells"], alpha_par=truth["alpha_par"],
+                                   alpha_perp=truth["alpha_perp"]).ravel()
+    cov = np.mean([m["cov"].matrix for m in mocks], axis=0) / len(mocks)
+    like = build_likelihood(m0["s"], vector, cov, m0["ells"], cosmology=a.cosmology.build(),
+                            z_eff=float(np.mean([m["z_eff"] for m in mocks])), settings=fit,
+                            progress=False)
+    phys = like.physical(best_fit(like))
+    out = derived_truth(float(phys["alpha_par"]), float(phys["alpha_perp"]))
+    out["chi2"] = float(like.chi2(best_fit(like)))
+    return out
+
+
 def truth_of(folder: Path, z_eff: float) -> tuple[float, float] | None:
     """Injected (alpha_par, alpha_perp) of one mock folder, or None if it has no truth file."""
     demo = folder / "truth.json"
@@ -76,14 +123,26 @@ def derived_truth(a_par: float, a_perp: float) -> dict:
             "epsilon": float(np.cbrt(a_par / a_perp) - 1.0)}
 
 
-def mean_fit(mocks: list[dict], cov_kind: str, seed: int = 1):
+def fit_settings(analysis, overrides: list[str]):
+    """The analysis' [fit] settings with ``KEY=VALUE`` overrides (TOML values)."""
+    import dataclasses
+    import tomllib
+
+    if not overrides:
+        return analysis.fit
+    values = tomllib.loads("\n".join(overrides))
+    return dataclasses.replace(analysis.fit, **values)
+
+
+def mean_fit(mocks: list[dict], cov_kind: str, seed: int = 1, overrides=()):
     """Fit the mean multipoles with the covariance of the mean."""
     n = len(mocks)
     vectors = np.array([m["vector"] for m in mocks])
     a = mocks[0]["analysis"]
+    settings = fit_settings(a, list(overrides))
     s = mocks[0]["s"]
-    in_range = (s >= a.fit.s_min) & (s <= a.fit.s_max)
-    n_fit_bins = int(in_range.sum()) * len(a.fit.fit_ells)
+    in_range = (s >= settings.s_min) & (s <= settings.s_max)
+    n_fit_bins = int(in_range.sum()) * len(settings.fit_ells)
     if cov_kind == "scatter":
         if n <= n_fit_bins + 4:
             raise SystemExit(f"--cov scatter needs more than {n_fit_bins + 4} mocks "
@@ -97,7 +156,7 @@ def mean_fit(mocks: list[dict], cov_kind: str, seed: int = 1):
         precision_factor = 1.0
     z_eff = float(np.mean([m["z_eff"] for m in mocks]))
     return fit_multipoles(s, vectors.mean(axis=0), cov, mocks[0]["ells"],
-                          cosmology=a.cosmology.build(), z_eff=z_eff, settings=a.fit,
+                          cosmology=a.cosmology.build(), z_eff=z_eff, settings=settings,
                           progress=False, seed=seed, covariance_type=f"mean of mocks ({cov_kind})",
                           precision_factor=precision_factor, name="mean"), z_eff
 
@@ -108,9 +167,19 @@ def main(argv=None) -> int:
     ap.add_argument("--batch", default="survey", choices=("survey", "box"))
     ap.add_argument("--config", help="config file name inside each mock folder")
     ap.add_argument("--paired", help="second config name: per-mock differences of the medians")
+    ap.add_argument("--paired-batch", type=Path,
+                    help="another validate_mocks folder with the same mock names (same seeds): "
+                         "per-mock differences against its runs of --paired (or --config)")
     ap.add_argument("--cov", default="mean", choices=("mean", "scatter"),
                     help="covariance of the mean: mean of the per-mock ones / N, or the "
                          "scatter of the mock vectors / N")
+    ap.add_argument("--predict", action="store_true",
+                    help="also fit the noise-free Zel'dovich expectation of these mocks "
+                         "(corrpipe.mocks.zeldovich_expectation): the offset a perfect mean "
+                         "should show, BAO mode coupling included (~1 min)")
+    ap.add_argument("--fit", action="append", default=[], metavar="KEY=VALUE",
+                    help="override a [fit] setting of the mean fit (TOML value, e.g. "
+                         "sigma_par=0.0); repeatable")
     args = ap.parse_args(argv)
     name = args.config or ("demo.toml" if args.batch == "survey" else "run.toml")
     folders = sorted(p for p in args.out.glob(f"{args.batch}_*") if (p / name).exists())
@@ -126,7 +195,7 @@ def main(argv=None) -> int:
         truths.append(truth_of(folder, m["z_eff"]))
     if len(mocks) < 2:
         raise SystemExit(f"need at least 2 finished mocks with {name} under {args.out}")
-    result, z_eff = mean_fit(mocks, args.cov)
+    result, z_eff = mean_fit(mocks, args.cov, overrides=args.fit)
     truth = None
     if all(t is not None for t in truths):
         truth = derived_truth(*np.mean(np.array(truths), axis=0))
@@ -140,18 +209,35 @@ def main(argv=None) -> int:
             line += (f"  truth {truth[q]:.4f}  offset {st['median'] - truth[q]:+.4f} "
                      f"({(st['median'] - truth[q]) / sigma:+.2f} sigma of the mean)")
         print(line)
-    if args.paired:
-        other = {}
+    if args.predict:
+        if truth is None:
+            print("--predict: the mocks have no truth files")
+        else:
+            pred = prediction_fit(mocks, truth, args.fit)
+            if pred is None:
+                print("--predict: only Zel'dovich mocks have a mode-coupling prediction")
+            else:
+                print(f"\nZel'dovich expectation of these mocks, fitted the same way "
+                      f"(chi2 {pred['chi2']:.2f} with the covariance of the mean):")
+                for q in QUANTITIES:
+                    print(f"{q:>10}: {pred[q]:.4f}  offset {pred[q] - truth[q]:+.4f}")
+    if args.paired or args.paired_batch:
+        other_name = args.paired or name
+        base = args.paired_batch
+        label = f"{base}/{other_name}" if base else other_name
+        pairs = []
         for m in mocks:
-            path = m["folder"] / args.paired
-            if path.exists():
-                try:
-                    other[m["folder"]] = read_mock(path)["summary"]
-                except Exception as exc:
-                    print(f"skip {m['folder'].name} ({args.paired}): {exc}")
-        pairs = [(m["summary"], other[m["folder"]]) for m in mocks
-                 if m["folder"] in other and m["summary"] and other[m["folder"]]]
-        print(f"\nper-mock medians, {name} minus {args.paired} ({len(pairs)} mocks):")
+            path = (base / m["folder"].name if base else m["folder"]) / other_name
+            if not path.exists():
+                continue
+            try:
+                other = read_mock(path)["summary"]
+            except Exception as exc:  # an unfinished mock: say so and go on
+                print(f"skip {path}: {exc}")
+                continue
+            if m["summary"] and other:
+                pairs.append((m["summary"], other))
+        print(f"\nper-mock medians, {name} minus {label} ({len(pairs)} mocks):")
         for q in QUANTITIES:
             d = np.array([a[q]["median"] - b[q]["median"] for a, b in pairs])
             if len(d) > 1:

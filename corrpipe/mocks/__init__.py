@@ -8,13 +8,14 @@ Public entry points (see the submodules for details):
 * :class:`MockSettings` (the ``[mock]`` config table) and :func:`write_mocks`
 """
 
-from corrpipe.mocks.box import (BoxMock, clipped_linear_bias, displacement_variance,
+from corrpipe.mocks.box import (BoxMock, clipped_bias_moments, clipped_linear_bias,
+                                displacement_variance,
                                 lagrangian_bias_for, linear_density, lognormal_box,
                                 zeldovich_box)
 from corrpipe.mocks.dilation import Dilation, expected_dilation
 from corrpipe.mocks.make import (MockFiles, effective_redshift, footprint_of, make_box_mock,
                                  make_survey_mock, mock_power, nz_of, true_cosmology,
-                                 write_mocks)
+                                 write_mocks, zeldovich_expectation)
 from corrpipe.mocks.settings import MockSettings
 from corrpipe.mocks.survey import (SurveyMock, carve_survey, shell_volume_fraction_outside,
                                    survey_randoms, tabulated_nz, write_box_catalogue,
@@ -22,10 +23,11 @@ from corrpipe.mocks.survey import (SurveyMock, carve_survey, shell_volume_fracti
 
 __all__ = [
     "BoxMock", "lognormal_box", "zeldovich_box", "linear_density", "clipped_linear_bias",
-    "lagrangian_bias_for", "displacement_variance",
+    "lagrangian_bias_for", "displacement_variance", "clipped_bias_moments",
     "Dilation", "expected_dilation",
     "SurveyMock", "carve_survey", "survey_randoms", "tabulated_nz",
     "shell_volume_fraction_outside", "write_sky_catalogue", "write_box_catalogue",
     "MockSettings", "MockFiles", "write_mocks", "make_box_mock", "make_survey_mock",
-    "true_cosmology", "mock_power", "footprint_of", "nz_of", "effective_redshift",
+    "true_cosmology", "mock_power", "zeldovich_expectation", "footprint_of", "nz_of",
+    "effective_redshift",
 ]

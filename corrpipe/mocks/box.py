@@ -303,6 +303,24 @@ def clipped_linear_bias(b_lagrangian: float, sigma: float) -> float:
     return float(b_lagrangian * cdf / (cdf + t * pdf))
 
 
+def clipped_bias_moments(b_weight: float, sigma: float) -> tuple[float, float]:
+    """Lagrangian bias moments (b1, b2) = (<w'>, <w''>) / <w> of weights max(0, 1 + b_w delta).
+
+    Notes
+    -----
+    w'' = |b_w| delta_D(delta + 1/b_w), so <w''> = |b_w| phi(1/t) / sigma with t = |b_w|
+    sigma; b1 is :func:`clipped_linear_bias`. These are the b1, b2 of the Zel'dovich
+    prediction (:mod:`corrpipe.theory.zeldovich`) for mocks drawn by :func:`zeldovich_box`.
+    """
+    t = abs(b_weight) * sigma
+    if t == 0:
+        return float(b_weight), 0.0
+    u = 1.0 / t
+    pdf = np.exp(-0.5 * u * u) / np.sqrt(2 * np.pi)
+    norm = special.ndtr(u) + t * pdf
+    return clipped_linear_bias(b_weight, sigma), float(abs(b_weight) * pdf / sigma / norm)
+
+
 def lagrangian_bias_for(bias: float, sigma: float) -> float:
     """Weight coefficient b_L whose clipped weights give Eulerian bias ``bias`` = 1 + b_eff.
 

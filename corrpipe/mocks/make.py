@@ -91,6 +91,57 @@ def make_box_mock(settings: MockSettings, seed: int, *, cosmology=None, power=No
     return zeldovich_box(*args, bias_smoothing=settings.bias_smoothing, **common)
 
 
+def zeldovich_expectation(settings: MockSettings, s, ells, *, alpha_par: float = 1.0,
+                          alpha_perp: float = 1.0, cosmology=None, n_mu: int = 8) -> np.ndarray:
+    """Noise-free multipoles that Zel'dovich mocks of these settings should measure.
+
+    The Zel'dovich correlation function of the mocks' Lagrangian-biased tracers
+    (:mod:`corrpipe.theory.zeldovich`), with the bias moments of their clipped selection
+    weights on the mock mesh (:func:`corrpipe.mocks.box.clipped_bias_moments`), plane-parallel
+    redshift-space distortions at the box redshift, seen through the dilation
+    (alpha_par, alpha_perp) of the analysis coordinates. Fitting it shows the dilation a fit
+    recovers from the mean of many such mocks, mode coupling included.
+
+    Parameters
+    ----------
+    settings : MockSettings
+        Zel'dovich mock definition (box or survey).
+    s : array_like
+        Separations of the analysis, Mpc/h (e.g. the estimate's bin centres).
+    ells : sequence of int
+        Even multipoles.
+    alpha_par, alpha_perp : float
+        Expected dilation of the analysis against the true coordinates.
+    cosmology : corrpipe.cosmology.Cosmology, optional
+        The true cosmology (default from the settings).
+    n_mu : int
+        Gauss-Legendre nodes on 0 < mu < 1.
+
+    Returns
+    -------
+    ndarray, shape (len(ells), len(s))
+    """
+    from corrpipe.mocks.box import clipped_bias_moments, lagrangian_bias_for
+    from corrpipe.mocks.fields import mesh_variance, power_on_mesh
+    from corrpipe.theory.zeldovich import ZeldovichFunctions, zeldovich_multipoles
+
+    if settings.kind != "zeldovich":
+        raise InputError(f"zeldovich_expectation: the mocks are {settings.kind!r}, not "
+                         "Zel'dovich ones")
+    if settings.bias_smoothing:
+        raise InputError("zeldovich_expectation: smoothed selection weights "
+                         "(bias_smoothing > 0) give a scale-dependent bias that is not modelled")
+    cosmology = true_cosmology(settings) if cosmology is None else cosmology
+    power = mock_power(settings, cosmology)
+    sigma_w = float(np.sqrt(mesh_variance(power_on_mesh(power, settings.n_mesh,
+                                                        settings.box_size),
+                                          settings.box_size)))
+    b1, b2 = clipped_bias_moments(lagrangian_bias_for(settings.bias, sigma_w), sigma_w)
+    funcs = ZeldovichFunctions(power)
+    return zeldovich_multipoles(funcs, s, ells, b1=b1, b2=b2, f=_growth_rate(settings, cosmology),
+                                alpha_par=alpha_par, alpha_perp=alpha_perp, n_mu=n_mu)
+
+
 def footprint_of(settings: MockSettings):
     """The union of the settings' RA/Dec boxes as a :class:`corrpipe.footprint.BoxFootprint`."""
     from corrpipe.footprint import BoxFootprint, SkyBox

@@ -14,8 +14,8 @@ from corrpipe import mesh
 from corrpipe.cosmology import Cosmology
 from corrpipe.errors import ConfigError, InputError
 from corrpipe.footprint import BoxFootprint, SkyBox
-from corrpipe.mocks import (BoxMock, MockSettings, carve_survey, clipped_linear_bias,
-                            expected_dilation, lagrangian_bias_for, lognormal_box,
+from corrpipe.mocks import (BoxMock, MockSettings, carve_survey, clipped_bias_moments,
+                            clipped_linear_bias, expected_dilation, lagrangian_bias_for, lognormal_box,
                             survey_randoms, tabulated_nz, write_mocks, write_sky_catalogue,
                             zeldovich_box)
 from corrpipe.mocks.fields import (gaussian_field_fourier, lognormal_gaussian_power,
@@ -135,6 +135,21 @@ def test_clipped_linear_bias_against_quadrature():
     assert clipped_linear_bias(b_w, 0.7) == pytest.approx(1.0, rel=1e-9)
     with pytest.raises(InputError, match="cannot be reached"):
         lagrangian_bias_for(5.0, 1.0)  # limit ~ 1.25 / sigma
+
+
+def test_clipped_bias_moments_against_quadrature():
+    # Stein's lemma twice (Stein 1981 [from memory]): <w''> = <w(d) (d^2 - s^2)> / s^4 for
+    # Gaussian d, an expectation of w itself (no delta function); scipy.integrate.quad.
+    for b_l, sigma in ((1.0, 0.5), (5.6, 1.3), (-0.6, 1.2)):
+        pdf = stats.norm(scale=sigma).pdf
+        lim = 12 * sigma
+        ew = integrate.quad(lambda d: max(0.0, 1 + b_l * d) * pdf(d), -lim, lim,
+                            points=[-1 / b_l])[0]
+        ew2 = integrate.quad(lambda d: max(0.0, 1 + b_l * d) * (d * d - sigma**2) * pdf(d),
+                             -lim, lim, points=[-1 / b_l])[0] / sigma**4
+        b1, b2 = clipped_bias_moments(b_l, sigma)
+        assert b1 == pytest.approx(clipped_linear_bias(b_l, sigma), rel=1e-12)
+        assert b2 == pytest.approx(ew2 / ew, rel=1e-7)
 
 
 @pytest.mark.parametrize("kwargs, match", [

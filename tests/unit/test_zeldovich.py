@@ -1,0 +1,80 @@
+"""Zel'dovich correlation function of biased tracers (corrpipe.theory.zeldovich)."""
+
+import numpy as np
+import pytest
+from scipy.special import spherical_jn
+
+from corrpipe.cosmology import preset
+from corrpipe.errors import InputError
+from corrpipe.theory.linear_power import LinearPower
+from corrpipe.theory.zeldovich import (ZeldovichFunctions, zeldovich_correlation,
+                                       zeldovich_multipoles)
+
+
+@pytest.fixture(scope="module")
+def power():
+    return LinearPower.eisenstein_hu(preset("planck2018"), z=0.5)
+
+
+def _quadrature(power, q, epsilon=1.0):
+    """Direct sums of the q-function integrals (Carlson, Reid & White 2013 [from memory])."""
+    k = np.linspace(1e-5, 6.0, 300_000)
+    dk = k[1] - k[0]
+    pk = epsilon * power(k) * np.exp(-k**2)
+    x = k * q
+    j0, j1 = spherical_jn(0, x), spherical_jn(1, x)
+    return np.array([np.sum(k**2 * pk * j0), -np.sum(k * pk * j1),
+                     np.sum(pk * (2 / 3 - 2 * j1 / x)), np.sum(pk * (-2 * j0 + 6 * j1 / x)),
+                     np.sum(pk) / 3]) * dk / (2 * np.pi**2)
+
+
+def test_q_functions_match_direct_quadrature(power):
+    # xi_L, U, X, Y by FFTLog (scipy.fft.fht) against plain sums of the defining integrals,
+    # and sigma^2 = int P dk / 6 pi^2 (Carlson, Reid & White 2013 eqs. for the ZA terms,
+    # from memory).
+    zf = ZeldovichFunctions(power)
+    for q in (20.0, 100.0):
+        ref = _quadrature(power, q)
+        got = np.array(zf.at(np.array([q])))[:, 0]
+        np.testing.assert_allclose(got, ref[:4], rtol=2e-4, atol=1e-7)
+    assert zf.sigma2 == pytest.approx(_quadrature(power, 50.0)[4], rel=1e-4)
+
+
+def test_linear_limit_is_kaiser(power):
+    # With a tiny amplitude the Zel'dovich xi of tracers of Eulerian bias b = 1 + b1 is the
+    # linear Kaiser one: xi_0 = (b^2 + 2bf/3 + f^2/5) xi_L, xi_2 = (4bf/3 + 4f^2/7) xi_2L with
+    # xi_2L = -int k^2 P j2 / 2 pi^2 (Kaiser 1987; Hamilton 1992). One-loop terms are of
+    # relative order epsilon (1e-2 here) at BAO scales.
+    eps, b1, f = 1e-2, 0.9, 0.7
+    zf = ZeldovichFunctions(lambda k: eps * power(k))
+    s = np.array([60.0, 90.0, 110.0])
+    got = zeldovich_multipoles(zf, s, (0, 2), b1=b1, b2=0.0, f=f, step=0.15,
+                               half_width=6.0, n_mu=6)
+    k = np.linspace(1e-5, 6.0, 300_000)
+    pk = eps * power(k) * np.exp(-k**2)
+    xi0 = np.array([np.sum(k**2 * pk * spherical_jn(0, k * r)) for r in s]) * (k[1] - k[0])
+    xi2 = -np.array([np.sum(k**2 * pk * spherical_jn(2, k * r)) for r in s]) * (k[1] - k[0])
+    xi0, xi2 = xi0 / (2 * np.pi**2), xi2 / (2 * np.pi**2)
+    b = 1 + b1
+    np.testing.assert_allclose(got[0], (b**2 + 2 * b * f / 3 + f**2 / 5) * xi0, rtol=0.01)
+    np.testing.assert_allclose(got[1], (4 * b * f / 3 + 4 * f**2 / 7) * xi2, rtol=0.01)
+
+
+def test_isotropic_dilation_is_a_rescaling(power):
+    # alpha_par = alpha_perp = a looks at the true xi at a * s (definition of the dilation)
+    zf = ZeldovichFunctions(power)
+    s = np.array([80.0, 105.0])
+    a = 1.03
+    one = zeldovich_multipoles(zf, s, (0, 2), b1=0.9, f=0.7, alpha_par=a, alpha_perp=a, n_mu=4)
+    two = zeldovich_multipoles(zf, a * s, (0, 2), b1=0.9, f=0.7, n_mu=4)
+    np.testing.assert_allclose(one, two, rtol=1e-12)
+
+
+def test_bad_inputs(power):
+    zf = ZeldovichFunctions(power)
+    with pytest.raises(InputError, match="even multipoles"):
+        zeldovich_multipoles(zf, [100.0], (1,))
+    with pytest.raises(InputError, match="too coarse"):
+        zeldovich_correlation(zf, [[0.0, 0.0, 100.0]], step=5.0)
+    with pytest.raises(InputError, match=r"shape \(n, 3\)"):
+        zeldovich_correlation(zf, [[0.0, 100.0]])
