@@ -92,7 +92,8 @@ def prediction_fit(mocks: list[dict], truth: dict, overrides=()):
     a = m0["analysis"]
     fit = fit_settings(a, list(overrides))
     vector = zeldovich_expectation(settings, m0["s"], m0["ells"], alpha_par=truth["alpha_par"],
-                                   alpha_perp=truth["alpha_perp"]).ravel()
+                                   alpha_perp=truth["alpha_perp"],
+                                   fiducial=a.cosmology.build()).ravel()
     cov = np.mean([m["cov"].matrix for m in mocks], axis=0) / len(mocks)
     like = build_likelihood(m0["s"], vector, cov, m0["ells"], cosmology=a.cosmology.build(),
                             z_eff=float(np.mean([m["z_eff"] for m in mocks])), settings=fit,

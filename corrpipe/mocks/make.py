@@ -92,7 +92,8 @@ def make_box_mock(settings: MockSettings, seed: int, *, cosmology=None, power=No
 
 
 def zeldovich_expectation(settings: MockSettings, s, ells, *, alpha_par: float = 1.0,
-                          alpha_perp: float = 1.0, cosmology=None, n_mu: int = 8) -> np.ndarray:
+                          alpha_perp: float = 1.0, cosmology=None, fiducial=None,
+                          n_mu: int = 8) -> np.ndarray:
     """Noise-free multipoles that Zel'dovich mocks of these settings should measure.
 
     The Zel'dovich correlation function of the mocks' Lagrangian-biased tracers
@@ -111,9 +112,14 @@ def zeldovich_expectation(settings: MockSettings, s, ells, *, alpha_par: float =
     ells : sequence of int
         Even multipoles.
     alpha_par, alpha_perp : float
-        Expected dilation of the analysis against the true coordinates.
+        Expected dilation (true over fiducial D/r_d, :func:`expected_dilation`; for a
+        stretched box, the stretch).
     cosmology : corrpipe.cosmology.Cosmology, optional
         The true cosmology (default from the settings).
+    fiducial : corrpipe.cosmology.Cosmology, optional
+        The analysis cosmology, when it differs from the true one: the true separations in
+        Mpc/h are then alpha (r_d h)_true / (r_d h)_fid times the analysis ones (the
+        dilation is a ratio of distances in units of each cosmology's r_d).
     n_mu : int
         Gauss-Legendre nodes on 0 < mu < 1.
 
@@ -137,9 +143,14 @@ def zeldovich_expectation(settings: MockSettings, s, ells, *, alpha_par: float =
                                                         settings.box_size),
                                           settings.box_size)))
     b1, b2 = clipped_bias_moments(lagrangian_bias_for(settings.bias, sigma_w), sigma_w)
+    scale = 1.0
+    if fiducial is not None:
+        scale = (float(cosmology.sound_horizon()) * cosmology.h
+                 / (float(fiducial.sound_horizon()) * fiducial.h))
     funcs = ZeldovichFunctions(power)
     return zeldovich_multipoles(funcs, s, ells, b1=b1, b2=b2, f=_growth_rate(settings, cosmology),
-                                alpha_par=alpha_par, alpha_perp=alpha_perp, n_mu=n_mu)
+                                alpha_par=alpha_par * scale, alpha_perp=alpha_perp * scale,
+                                n_mu=n_mu)
 
 
 def footprint_of(settings: MockSettings):

@@ -78,3 +78,36 @@ def test_bad_inputs(power):
         zeldovich_correlation(zf, [[0.0, 0.0, 100.0]], step=5.0)
     with pytest.raises(InputError, match=r"shape \(n, 3\)"):
         zeldovich_correlation(zf, [[0.0, 100.0]])
+
+
+def test_mock_expectation_uses_the_mocks_bias_moments_and_distance_units():
+    # zeldovich_expectation = the Zel'dovich multipoles with the b1, b2 of the mock's clipped
+    # selection weights on its own mesh; with a fiducial cosmology the analysis separations
+    # map to true ones by alpha (r_d h)_true / (r_d h)_fid (alpha is a ratio of D / r_d).
+    import dataclasses
+
+    from corrpipe.mocks import (MockSettings, clipped_bias_moments, lagrangian_bias_for,
+                                mock_power, true_cosmology, zeldovich_expectation)
+    from corrpipe.mocks.fields import mesh_variance, power_on_mesh
+
+    st = MockSettings(kind="zeldovich", geometry="box", box_size=600.0, n_mesh=64, nbar=1e-4,
+                      bias=2.0, redshift=0.5)
+    cosmo = true_cosmology(st)
+    power = mock_power(st, cosmo)
+    sigma_w = np.sqrt(mesh_variance(power_on_mesh(power, 64, 600.0), 600.0))
+    b1, b2 = clipped_bias_moments(lagrangian_bias_for(2.0, sigma_w), sigma_w)
+    s = np.array([95.0, 105.0])
+    got = zeldovich_expectation(st, s, (0, 2), alpha_par=1.02, alpha_perp=0.99, n_mu=2)
+    want = zeldovich_multipoles(ZeldovichFunctions(power), s, (0, 2), b1=b1, b2=b2,
+                                f=float(cosmo.growth_rate(0.5)), alpha_par=1.02,
+                                alpha_perp=0.99, n_mu=2)
+    np.testing.assert_allclose(got, want, rtol=1e-12)
+    fid = dataclasses.replace(cosmo, h=cosmo.h * 1.01)
+    scale = cosmo.sound_horizon() * cosmo.h / (fid.sound_horizon() * fid.h)
+    assert abs(scale - 1) > 1e-3
+    shifted = zeldovich_expectation(st, s, (0, 2), alpha_par=1.02, alpha_perp=0.99,
+                                    fiducial=fid, n_mu=2)
+    want = zeldovich_multipoles(ZeldovichFunctions(power), s, (0, 2), b1=b1, b2=b2,
+                                f=float(cosmo.growth_rate(0.5)), alpha_par=1.02 * scale,
+                                alpha_perp=0.99 * scale, n_mu=2)
+    np.testing.assert_allclose(shifted, want, rtol=1e-12)
