@@ -656,10 +656,21 @@ def _fit_inputs(a, est, cov, fit, n_params: int) -> dict:
                 ells=est.ells, precision_factor=hartlap, variance_factor=m1)
 
 
-def _fit(ctx: StageContext):
-    """BAO template fit by MCMC (``[fit]``; template at the ``[cosmology]`` fiducial)."""
+def fit_settings_of(analysis):
+    """The ``[fit]`` settings an analysis is fitted with: switched to the post-reconstruction
+    model (damping, RSD convention, smoothing) when ``[reconstruct]`` is enabled."""
     import dataclasses
 
+    settings = analysis.fit
+    if analysis.reconstruct.enabled and not settings.reconstructed:
+        settings = dataclasses.replace(settings, reconstructed=True,
+                                       recon_convention=analysis.reconstruct.convention,
+                                       smoothing_radius=analysis.reconstruct.smoothing)
+    return settings
+
+
+def _fit(ctx: StageContext):
+    """BAO template fit by MCMC (``[fit]``; template at the ``[cosmology]`` fiducial)."""
     from corrpipe.covariance import CovarianceResult
     from corrpipe.estimators import Estimate
     from corrpipe.fit import fit_multipoles
@@ -670,11 +681,7 @@ def _fit(ctx: StageContext):
         z_eff = float(h5.attrs["z_eff"])
     with ctx.read("covariance") as h5:
         cov = CovarianceResult.from_hdf5_group(h5["covariance"])
-    settings = a.fit
-    if a.reconstruct.enabled and not settings.reconstructed:
-        settings = dataclasses.replace(settings, reconstructed=True,
-                                       recon_convention=a.reconstruct.convention,
-                                       smoothing_radius=a.reconstruct.smoothing)
+    settings = fit_settings_of(a)
     cosmo = _cosmology(a)
     inputs = _fit_inputs(a, est, cov, settings, settings.n_fit_parameters)
     result = fit_multipoles(cosmology=cosmo, z_eff=z_eff, settings=settings,

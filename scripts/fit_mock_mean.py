@@ -129,10 +129,12 @@ def fit_settings(analysis, overrides: list[str]):
     import dataclasses
     import tomllib
 
+    from corrpipe.stages import fit_settings_of
+
+    settings = fit_settings_of(analysis)  # the post-reconstruction model when reconstructed
     if not overrides:
-        return analysis.fit
-    values = tomllib.loads("\n".join(overrides))
-    return dataclasses.replace(analysis.fit, **values)
+        return settings
+    return dataclasses.replace(settings, **tomllib.loads("\n".join(overrides)))
 
 
 def mean_fit(mocks: list[dict], cov_kind: str, seed: int = 1, overrides=()):
