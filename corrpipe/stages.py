@@ -800,7 +800,7 @@ def fit_external(config, path, output=None, *, progress: bool = True) -> dict:
     with output_lock(folder):
         result = fit_multipoles(ext.s, ext.data_vector, ext.covariance, ext.ells,
                                 cosmology=_cosmology(analysis), z_eff=float(z_eff),
-                                settings=analysis.fit,
+                                settings=fit_settings_of(analysis),
                                 progress_path=folder / ".fit.external.progress.h5",
                                 progress=progress, seed=config.run.seed % (2**32),
                                 covariance_type=str(meta.get("covariance_type", "external")),

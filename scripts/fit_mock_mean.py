@@ -27,6 +27,7 @@ at the mean z_eff (survey), or the injected stretch (box).
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import sys
 from pathlib import Path
@@ -34,11 +35,13 @@ from pathlib import Path
 import numpy as np
 
 from corrpipe.checkpoint import open_checkpoint
-from corrpipe.config import load_config
+from corrpipe.config import load_config, tomllib, validate_section
 from corrpipe.cosmology import Cosmology
 from corrpipe.covariance import CovarianceResult, hartlap_factor
+from corrpipe.errors import ConfigError
 from corrpipe.estimators import Estimate
 from corrpipe.fit import fit_multipoles
+from corrpipe.fit.result import dilations_from_samples
 from corrpipe.mocks import expected_dilation
 
 QUANTITIES = ("alpha_par", "alpha_perp", "alpha", "epsilon")
@@ -62,22 +65,18 @@ def read_mock(config_path: Path) -> dict:
 
 def mock_settings_of(folder: Path):
     """The MockSettings a mock folder was drawn with (from its truth file), or None."""
-    import dataclasses
-
     from corrpipe.mocks import MockSettings
 
-    demo = folder / "truth.json"
-    if demo.exists():
-        raw = json.loads(demo.read_text())["mock"]
+    path = folder / "truth.json"
+    if path.exists():
+        raw = json.loads(path.read_text())["mock"]
     else:
         paths = sorted(folder.glob("*_truth.json"))
         if not paths:
             return None
-        raw = json.loads(paths[0].read_text())["settings"]
-    names = {f.name for f in dataclasses.fields(MockSettings)}
-    raw = {k: (tuple(tuple(x) if isinstance(x, list) else x for x in v)
-               if isinstance(v, list) else v) for k, v in raw.items() if k in names}
-    return MockSettings(**raw)
+        path = paths[0]
+        raw = json.loads(path.read_text())["settings"]
+    return validate_section(MockSettings, raw, "mock", str(path), folder)
 
 
 def prediction_fit(mocks: list[dict], truth: dict, overrides=()):
@@ -98,9 +97,10 @@ def prediction_fit(mocks: list[dict], truth: dict, overrides=()):
     like = build_likelihood(m0["s"], vector, cov, m0["ells"], cosmology=a.cosmology.build(),
                             z_eff=float(np.mean([m["z_eff"] for m in mocks])), settings=fit,
                             progress=False)
-    phys = like.physical(best_fit(like))
+    best = best_fit(like)
+    phys = like.physical(best)
     out = derived_truth(float(phys["alpha_par"]), float(phys["alpha_perp"]))
-    out["chi2"] = float(like.chi2(best_fit(like)))
+    out["chi2"] = float(like.chi2(best))
     return out
 
 
@@ -119,22 +119,27 @@ def truth_of(folder: Path, z_eff: float) -> tuple[float, float] | None:
 
 
 def derived_truth(a_par: float, a_perp: float) -> dict:
-    """alpha and epsilon from alpha_par, alpha_perp (Xu et al. 2013)."""
-    return {"alpha_par": a_par, "alpha_perp": a_perp, "alpha": float(np.cbrt(a_par * a_perp**2)),
-            "epsilon": float(np.cbrt(a_par / a_perp) - 1.0)}
+    """alpha_par, alpha_perp and the alpha, epsilon they imply (Xu et al. 2013)."""
+    out = dilations_from_samples(("alpha_par", "alpha_perp"), np.array([[a_par, a_perp]]))
+    return {q: float(out[q][0]) for q in QUANTITIES}
 
 
 def fit_settings(analysis, overrides: list[str]):
-    """The analysis' [fit] settings with ``KEY=VALUE`` overrides (TOML values)."""
-    import dataclasses
-    import tomllib
-
+    """The [fit] settings the pipeline fits ``analysis`` with, plus ``KEY=VALUE`` overrides
+    (TOML values, checked like the config's [fit] table)."""
+    from corrpipe.fit import FitSettings
     from corrpipe.stages import fit_settings_of
 
     settings = fit_settings_of(analysis)  # the post-reconstruction model when reconstructed
     if not overrides:
         return settings
-    return dataclasses.replace(settings, **tomllib.loads("\n".join(overrides)))
+    try:
+        values = tomllib.loads("\n".join(overrides))
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"--fit {' '.join(overrides)}: give KEY=VALUE with TOML values "
+                          f"({exc})") from exc
+    current = {f.name: getattr(settings, f.name) for f in dataclasses.fields(settings) if f.init}
+    return validate_section(FitSettings, {**current, **values}, "fit", "--fit", Path("."))
 
 
 def mean_fit(mocks: list[dict], cov_kind: str, seed: int = 1, overrides=()):
@@ -250,4 +255,7 @@ def main(argv=None) -> int:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    try:
+        sys.exit(main())
+    except ConfigError as exc:
+        sys.exit(f"fit_mock_mean: {exc}")

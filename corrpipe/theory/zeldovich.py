@@ -68,7 +68,8 @@ class ZeldovichFunctions:
         self.Y = 2.0 * j2
 
     def at(self, q: np.ndarray) -> tuple[np.ndarray, ...]:
-        """xi_L, U, X, Y at separations ``q`` (linear interpolation; X -> 2 sigma^2 beyond)."""
+        """xi_L, U, X, Y at separations ``q`` (linear interpolation inside the table; held at
+        the end values outside it)."""
         out = [np.interp(q, self.q, a) for a in (self.xi, self.U, self.X, self.Y)]
         return tuple(out)
 

@@ -166,3 +166,20 @@ def test_settings_count_the_parameters_the_likelihood_samples(kw):
     like = Likelihood(S, d, cov, (0, 2), _template(), settings)
     assert settings.n_sampled_parameters == like.n_dim
     assert settings.n_fit_parameters == like.n_dim + like.n_broadband
+
+
+def test_fit_settings_of_switches_to_the_post_reconstruction_model():
+    # The pipeline's fit and `refit --multipoles` share this: with [reconstruct] enabled the
+    # fit uses the post-reconstruction damping and the reconstruction's RSD convention and
+    # smoothing (Padmanabhan et al. 2012 conventions; REFERENCES sec. 8); otherwise [fit] as is.
+    from types import SimpleNamespace
+
+    from corrpipe.stages import fit_settings_of
+
+    recon = SimpleNamespace(enabled=True, convention="keep-rsd", smoothing=10.0)
+    got = fit_settings_of(SimpleNamespace(fit=FitSettings(), reconstruct=recon))
+    assert got.reconstructed and got.recon_convention == "keep-rsd"
+    assert got.smoothing_radius == 10.0
+    assert got.damping == FitSettings(reconstructed=True).damping != FitSettings().damping
+    off = SimpleNamespace(fit=FitSettings(), reconstruct=SimpleNamespace(enabled=False))
+    assert fit_settings_of(off) == FitSettings()
