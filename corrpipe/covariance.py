@@ -17,7 +17,7 @@ from tqdm.auto import tqdm
 from corrpipe.errors import ConfigError, InputError, StageError
 from corrpipe.estimators import correlation
 from corrpipe.paircount.result import PairCounts
-from corrpipe.regions import RegionSettings
+from corrpipe.survey.regions import RegionSettings
 from corrpipe.settings import setting
 
 __all__ = [

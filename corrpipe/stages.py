@@ -85,16 +85,16 @@ class ReportSettings:
 
 def stage_section_classes() -> dict[str, type]:
     """Config table name -> settings dataclass for every stage table."""
-    from corrpipe.catalog import CatalogueSettings
+    from corrpipe.survey.catalog import CatalogueSettings
     from corrpipe.cosmology import CosmologySettings
     from corrpipe.covariance import CovarianceSettings
     from corrpipe.estimators import EstimateSettings
     from corrpipe.fit import FitSettings
-    from corrpipe.footprint import FootprintSettings
-    from corrpipe.randoms import RandomsSettings
+    from corrpipe.survey.footprint import FootprintSettings
+    from corrpipe.survey.randoms import RandomsSettings
     from corrpipe.distributed import EngineSettings
     from corrpipe.recon import ReconSettings
-    from corrpipe.weights import WeightsSettings
+    from corrpipe.survey.weights import WeightsSettings
 
     return {
         "cosmology": CosmologySettings,
@@ -144,7 +144,7 @@ def _write_arrays(group: h5py.Group, arrays: dict[str, Any]) -> None:
 
 
 def store_catalogue(group: h5py.Group, cat) -> None:
-    """Store a :class:`corrpipe.catalog.Catalogue` in an HDF5 group."""
+    """Store a :class:`corrpipe.survey.catalog.Catalogue` in an HDF5 group."""
     _write_arrays(group, {"positions": cat.positions, "weights": cat.weights, "ra": cat.ra,
                           "dec": cat.dec, "z": cat.z, "regions": cat.regions})
     group.attrs["name"] = cat.name
@@ -155,7 +155,7 @@ def store_catalogue(group: h5py.Group, cat) -> None:
 
 def read_catalogue(group: h5py.Group):
     """Read a catalogue stored by :func:`store_catalogue`."""
-    from corrpipe.catalog import Catalogue
+    from corrpipe.survey.catalog import Catalogue
 
     get = lambda k: group[k][()] if k in group else None  # noqa: E731
     box = float(group.attrs["box_size"])
@@ -172,7 +172,7 @@ def read_catalogue(group: h5py.Group):
 
 def _load(ctx: StageContext):
     """Read and validate the data catalogue (``[catalogue]``, ``[cosmology]``)."""
-    from corrpipe.catalog import load_catalogue
+    from corrpipe.survey.catalog import load_catalogue
 
     a = ctx.analysis
     cat = load_catalogue(a.catalogue, _cosmology(a))
@@ -191,12 +191,12 @@ def _box_uses_randoms(a) -> bool:
 def _randoms(ctx: StageContext):
     """Randoms, n(z), FKP weights and jackknife regions (``[footprint]``, ``[randoms]``,
     ``[weights]`` and the region keys of ``[covariance]``)."""
-    from corrpipe import randoms as rnd
-    from corrpipe import regions as reg
-    from corrpipe.catalog import load_sky_catalogue
+    from corrpipe.survey import randoms as rnd
+    from corrpipe.survey import regions as reg
+    from corrpipe.survey.catalog import load_sky_catalogue
     from corrpipe.cosmology import sky_to_cartesian
-    from corrpipe.footprint import check_data_inside, footprint_from_settings
-    from corrpipe.weights import combine_fkp, redshift_density, redshift_edges
+    from corrpipe.survey.footprint import check_data_inside, footprint_from_settings
+    from corrpipe.survey.weights import combine_fkp, redshift_density, redshift_edges
 
     a = ctx.analysis
     cosmo = _cosmology(a)
@@ -302,7 +302,7 @@ def _randoms(ctx: StageContext):
 
 def _region_keys(a) -> dict:
     """The jackknife-region keys of ``[covariance]`` (the randoms stage assigns regions)."""
-    from corrpipe.regions import RegionSettings
+    from corrpipe.survey.regions import RegionSettings
     import dataclasses
 
     return {f"covariance.{f.name}": getattr(a.covariance, f.name)
@@ -310,7 +310,7 @@ def _region_keys(a) -> dict:
 
 
 def _coverage_area(ra, dec, nside: int) -> float:
-    from corrpipe.footprint import footprint_from_data
+    from corrpipe.survey.footprint import footprint_from_data
 
     return footprint_from_data(ra, dec, nside=nside).area_sr()
 
@@ -459,7 +459,7 @@ def read_counts(h5: h5py.File, mode: str = "smu") -> dict:
 def _reconstruct(ctx: StageContext):
     """Shift data and randoms by the Zel'dovich displacement (``[reconstruct]``)."""
     from corrpipe import recon
-    from corrpipe.regions import cube_regions
+    from corrpipe.survey.regions import cube_regions
 
     a = ctx.analysis
     rs = a.reconstruct
@@ -533,9 +533,9 @@ def _mock_vectors(ctx: StageContext, files: list[str]) -> np.ndarray:
     """
     import dataclasses
 
-    from corrpipe.catalog import load_catalogue
+    from corrpipe.survey.catalog import load_catalogue
     from corrpipe.estimators import estimate_from_counts
-    from corrpipe.weights import RedshiftDensity, combine_fkp
+    from corrpipe.survey.weights import RedshiftDensity, combine_fkp
 
     a = ctx.analysis
     cosmo = _cosmology(a)

@@ -154,8 +154,8 @@ def zeldovich_expectation(settings: MockSettings, s, ells, *, alpha_par: float =
 
 
 def footprint_of(settings: MockSettings):
-    """The union of the settings' RA/Dec boxes as a :class:`corrpipe.footprint.BoxFootprint`."""
-    from corrpipe.footprint import BoxFootprint, SkyBox
+    """The union of the settings' RA/Dec boxes as a :class:`corrpipe.survey.footprint.BoxFootprint`."""
+    from corrpipe.survey.footprint import BoxFootprint, SkyBox
 
     boxes = []
     for i, entry in enumerate(settings.footprint):

@@ -144,7 +144,7 @@ def carve_survey(
         Box mock made in ``cosmology`` (no injected box stretch).
     cosmology : corrpipe.cosmology.Cosmology
         The *true* cosmology: positions in its Mpc/h, its chi -> z.
-    footprint : corrpipe.footprint.Footprint
+    footprint : corrpipe.survey.footprint.Footprint
         Angular mask (``contains(ra, dec)``, ``sample(n, rng)``).
     z_min, z_max : float
         Redshift shell (observed redshift).
@@ -248,7 +248,7 @@ def survey_randoms(footprint, cosmology, z_min: float, z_max: float, n_randoms: 
 
     Parameters
     ----------
-    footprint : corrpipe.footprint.Footprint
+    footprint : corrpipe.survey.footprint.Footprint
         Angular mask.
     cosmology : corrpipe.cosmology.Cosmology
         Cosmology of the n(z) (the mock's true one).

@@ -17,7 +17,7 @@ from astropy import units as u
 from astropy.coordinates import spherical_to_cartesian
 from astropy.table import Table
 
-from corrpipe.catalog import (
+from corrpipe.survey.catalog import (
     Catalogue,
     CatalogueSettings,
     box_catalogue,
@@ -111,7 +111,7 @@ def test_redshift_cut_counts_and_logs(tmp_path, caplog):
     path = _write(table, tmp_path, "ecsv")
     z = np.asarray(table["Z"])
     expected = int(np.count_nonzero((z >= 0.5) & (z < 0.6)))
-    with caplog.at_level(logging.INFO, logger="corrpipe.catalog"):
+    with caplog.at_level(logging.INFO, logger="corrpipe.survey.catalog"):
         cat = load_sky_catalogue(path, z_min=0.5, z_max=0.6, cosmology=COSMO)
     assert len(cat) == expected and np.all((cat.z >= 0.5) & (cat.z < 0.6))
     assert 0.5 in cat.z and 0.6 not in cat.z

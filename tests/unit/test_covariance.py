@@ -13,7 +13,7 @@ from corrpipe.covariance import (CovarianceResult, gaussian_box_covariance, hart
                                  mohammad_percival_weight, percival_factors)
 from corrpipe.errors import ConfigError, InputError, StageError
 from corrpipe.estimators import multipoles
-from corrpipe.regions import cube_regions
+from corrpipe.survey.regions import cube_regions
 
 sys.path.insert(0, str(Path(__file__).parent))
 from pair_oracle import brute_counts  # noqa: E402

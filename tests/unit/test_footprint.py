@@ -10,7 +10,7 @@ from astropy.io import fits
 from scipy import integrate, stats
 
 from corrpipe.errors import ConfigError, InputError
-from corrpipe.footprint import (SQ_DEG_PER_SR, BoxFootprint, FootprintMismatchWarning,
+from corrpipe.survey.footprint import (SQ_DEG_PER_SR, BoxFootprint, FootprintMismatchWarning,
                                 FootprintSettings, HealpixFootprint, SkyBox,
                                 check_data_inside, footprint_from_data,
                                 footprint_from_settings, outside_fraction, read_healpix_map)

@@ -13,7 +13,7 @@ from scipy import integrate, stats
 from corrpipe import mesh
 from corrpipe.cosmology import Cosmology
 from corrpipe.errors import ConfigError, InputError
-from corrpipe.footprint import BoxFootprint, SkyBox
+from corrpipe.survey.footprint import BoxFootprint, SkyBox
 from corrpipe.mocks import (BoxMock, MockSettings, carve_survey, clipped_bias_moments,
                             clipped_linear_bias, expected_dilation, lagrangian_bias_for, lognormal_box,
                             survey_randoms, tabulated_nz, write_mocks, write_sky_catalogue,
@@ -270,7 +270,7 @@ def test_survey_randoms_follow_comoving_volume():
 
 def test_written_catalogue_loads_like_data(tmp_path):
     # The file is a normal catalogue: astropy reads back the same numbers (FITS and HDF5).
-    from corrpipe.catalog import load_sky_catalogue
+    from corrpipe.survey.catalog import load_sky_catalogue
 
     rng = np.random.default_rng(5)
     ra, dec, z = rng.uniform(20, 60, 50), rng.uniform(10, 40, 50), rng.uniform(0.2, 0.5, 50)
@@ -313,7 +313,7 @@ def test_demo_inputs_are_a_loadable_survey_with_known_truth(tmp_path):
     # (REFERENCES sec. 7 definitions) at the sample's mean redshift.
     import json
 
-    from corrpipe.catalog import load_sky_catalogue
+    from corrpipe.survey.catalog import load_sky_catalogue
     from corrpipe.config import load_config
     from corrpipe.cosmology import preset
     from corrpipe.demo import SURVEY_NAME, demo_settings, write_demo_inputs

@@ -6,8 +6,8 @@ import pytest
 from scipy import stats
 
 from corrpipe.errors import ConfigError, InputError
-from corrpipe.footprint import BoxFootprint, FootprintMismatchWarning, HealpixFootprint, SkyBox
-from corrpipe.randoms import (RandomCatalogue, box_randoms, make_randoms,
+from corrpipe.survey.footprint import BoxFootprint, FootprintMismatchWarning, HealpixFootprint, SkyBox
+from corrpipe.survey.randoms import (RandomCatalogue, box_randoms, make_randoms,
                               outside_random_coverage)
 
 FOOTPRINT = BoxFootprint((SkyBox(340, 20, -10, 10), SkyBox(100, 130, 20, 40)))

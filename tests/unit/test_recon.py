@@ -378,7 +378,7 @@ def test_vector_read_out_kernel_matches_mesh_interpolate(scheme):
     pos = rng.uniform(-60, 40, size=(5000, 3)) + np.array([0.0, 60.0, 340.0])
     theta_k = mesh.to_fourier(field)
     psi = mesh.displacement_fourier(theta_k, 80.0)
-    got = recon._displacement_at(theta_k, geometry, [pos], scheme, None)[0]
+    got = recon.solver._displacement_at(theta_k, geometry, [pos], scheme, None)[0]
     want = np.stack([mesh.interpolate(psi[a], pos, 80.0, scheme, np.array(geometry.origin))
                      for a in range(3)], axis=1)
     np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12)

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from corrpipe.errors import ConfigError, InputError
-from corrpipe.footprint import BoxFootprint, SkyBox
-from corrpipe.regions import (check_regions, cube_regions, healpix_regions, kmeans_regions,
+from corrpipe.survey.footprint import BoxFootprint, SkyBox
+from corrpipe.survey.regions import (check_regions, cube_regions, healpix_regions, kmeans_regions,
                               unit_vectors)
 
 FOOTPRINT = BoxFootprint((SkyBox(330, 40, -15, 20),))

@@ -7,8 +7,8 @@ from scipy import stats
 
 from corrpipe.cosmology import Cosmology
 from corrpipe.errors import ConfigError, InputError
-from corrpipe.footprint import SkyBox
-from corrpipe.weights import (RedshiftDensity, combine_fkp, fkp_weights, redshift_density,
+from corrpipe.survey.footprint import SkyBox
+from corrpipe.survey.weights import (RedshiftDensity, combine_fkp, fkp_weights, redshift_density,
                               redshift_edges, shell_volumes)
 
 COSMO = Cosmology()

@@ -8,10 +8,10 @@ from scipy import stats
 from corrpipe.cosmology import Cosmology, sky_to_cartesian
 from corrpipe.covariance import jackknife_samples, jackknife_covariance
 from corrpipe.estimators import correlation, multipoles
-from corrpipe.footprint import BoxFootprint, SkyBox
+from corrpipe.survey.footprint import BoxFootprint, SkyBox
 from corrpipe.paircount import Binning, count_pairs
-from corrpipe.randoms import make_randoms
-from corrpipe.regions import kmeans_regions
+from corrpipe.survey.randoms import make_randoms
+from corrpipe.survey.regions import kmeans_regions
 
 COSMO = Cosmology()
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from corrpipe.mesh_kernels import axis_weights
+from corrpipe.mesh.kernels import axis_weights
 
 __all__ = ["read_vector_kernel"]
 

@@ -1,6 +1,6 @@
 """Random catalogues that follow the angular footprint and the radial selection of the data.
 
-Directions are uniform on the sphere inside a :class:`corrpipe.footprint.Footprint`.
+Directions are uniform on the sphere inside a :class:`corrpipe.survey.footprint.Footprint`.
 Redshifts are either drawn from the data with their weights (the "shuffled" randoms of common
 practice) or drawn from a smoothed n(z) (a Gaussian-kernel density of the weighted data
 redshifts, reflected at the redshift limits). Several independent sets can be labelled for
@@ -16,7 +16,7 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from corrpipe.errors import ConfigError, InputError
-from corrpipe.footprint import (Footprint, FootprintMismatchWarning, footprint_from_data)
+from corrpipe.survey.footprint import (Footprint, FootprintMismatchWarning, footprint_from_data)
 from corrpipe.settings import setting
 
 __all__ = [
