@@ -8,7 +8,7 @@ from pathlib import Path
 from typing import Any, Callable, Sequence
 
 from corrpipe.config import RunConfig, load_config
-from corrpipe.errors import CheckpointError, StageError
+from corrpipe.errors import CheckpointError, ConfigError, StageError
 from corrpipe.pipeline import output_lock, run_analysis, run_batch, stage_status
 
 __all__ = ["check", "status_text", "run", "refit", "refit_external", "summary", "demo",
@@ -91,10 +91,8 @@ def refit(config: str | Path | RunConfig, *, analyses: Sequence[str] | None = No
 def refit_external(config: str | Path, multipoles: str | Path, output: str | Path | None = None,
                    *, progress: bool = True, echo: Echo = _quiet) -> dict:
     """Fit an external file of multipoles + covariance with the config's fit settings."""
-    from corrpipe.stages import fit_external
-
     cfg = load_config(config)
-    result = fit_external(cfg, Path(multipoles), Path(output) if output else None,
+    result = _fit_external(cfg, Path(multipoles), Path(output) if output else None,
                           progress=progress)
     echo(result["text"])
     return result["summary"]
@@ -125,15 +123,135 @@ def demo(output: str | Path = "corrpipe_demo", *, seed: int = 7, scale: str = "d
     ``scale`` is one of :data:`corrpipe.demo.SCALES` ("demo" by default: median BAO detection
     about 2 sigma per realisation; "large": about 3 sigma).
     """
-    from corrpipe.stages import run_demo
-
-    return run_demo(Path(output), seed=seed, scale=scale, progress=progress, echo=echo)
+    return _run_demo(Path(output), seed=seed, scale=scale, progress=progress, echo=echo)
 
 
 def write_mocks(config: str | Path, output: str | Path | None = None, *, progress: bool = True,
                 echo: Echo = print) -> list[Path]:
     """Write the mock catalogues a TOML file's ``[mock]`` table describes."""
-    from corrpipe.stages import write_mock_files
-
-    return write_mock_files(Path(config), Path(output) if output else None, progress=progress,
+    return _write_mock_files(Path(config), Path(output) if output else None, progress=progress,
                             echo=echo)
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def _fit_external(config, path, output=None, *, progress: bool = True) -> dict:
+    """Fit an external multipoles + covariance file with the config's ``[fit]`` settings.
+
+    The file formats are those of :func:`corrpipe.fit.external.load_external_multipoles`.
+    Results go to ``output`` (default: ``<run output>/external``): ``fit.h5``,
+    ``summary.json``, ``summary.txt`` and the plots.
+
+    Returns
+    -------
+    dict
+        ``{"summary": summary dict, "text": text summary}``.
+    """
+    from corrpipe.checkpoint import write_checkpoint, write_json_atomic, write_text_atomic
+    from corrpipe.fit import fit_multipoles
+    from corrpipe.stages.common import cosmology_of
+    from corrpipe.stages.fit import fit_settings_of
+    from corrpipe.fit.external import load_external_multipoles
+    from corrpipe.pipeline import file_digest
+
+    analysis = config.analyses[0]
+    ext = load_external_multipoles(path)
+    z_eff = ext.z_eff if ext.z_eff is not None else None
+    if z_eff is None:
+        raise StageError(f"{path} gives no effective redshift; add the attribute/header "
+                         "z_eff (see README, 'External data')")
+    folder = Path(output) if output is not None else Path(config.run.output) / "external"
+    meta = ext.meta
+    with output_lock(folder):
+        result = fit_multipoles(ext.s, ext.data_vector, ext.covariance, ext.ells,
+                                cosmology=cosmology_of(analysis), z_eff=float(z_eff),
+                                settings=fit_settings_of(analysis),
+                                progress_path=folder / ".fit.external.progress.h5",
+                                progress=progress, seed=config.run.seed % (2**32),
+                                covariance_type=str(meta.get("covariance_type", "external")),
+                                precision_factor=float(meta.get("precision_factor", 1.0)),
+                                variance_factor=float(meta.get("variance_factor", 1.0)),
+                                name=f"{analysis.name}-external")
+        summary = result.to_dict()
+        summary["input_file"] = str(path)
+        write_checkpoint(folder / "fit.h5", "fit", file_digest(path),
+                         lambda h5: result.to_hdf5(h5.create_group("fit")),
+                         {"config_text": config.text, "input_digests":
+                          json.dumps({str(path): file_digest(path)})})
+        write_json_atomic(folder / "summary.json", summary)
+        text = result.text_summary()
+        write_text_atomic(folder / "summary.txt", text + "\n")
+        progress_file = folder / ".fit.external.progress.h5"
+        if progress_file.exists():
+            progress_file.unlink()
+    return {"summary": summary, "text": text}
+
+
+def _run_demo(output, *, seed: int = 7, scale: str = "demo", progress: bool = True,
+             echo=print) -> dict:
+    """Make the built-in (fictional) demo survey, run the pipeline, compare with the truth.
+
+    Returns
+    -------
+    dict
+        ``{"truth": {...}, "recovered": {...}, "summary": summary.json contents}``.
+    """
+    import time
+
+    from corrpipe.demo import SURVEY_NAME, TRACER, truth_vs_recovered, write_demo_inputs
+
+    start = time.perf_counter()
+    folder = Path(output)
+    echo(f"corrpipe demo: {SURVEY_NAME} (fictional), {TRACER}; writing inputs to {folder}")
+    inputs = write_demo_inputs(folder, seed=seed, scale=scale, progress=progress)
+    echo(f"  {inputs.n_galaxies} galaxies and {inputs.n_randoms} randoms over "
+         f"{inputs.area_deg2:.0f} deg^2 ({inputs.seconds:.0f} s); config {inputs.config}")
+    cfg = load_config(inputs.config)
+    run(cfg, progress=progress, echo=echo)
+    results = cfg.analysis_folder(cfg.analyses[0])
+    summary = json.loads((results / "summary.json").read_text())
+    truth = inputs.truth_at(summary["z_eff"])
+    echo("")
+    echo("Truth injected into the demo survey against what the pipeline recovered:")
+    echo(truth_vs_recovered(truth, summary["summary"], summary.get("distances")))
+    echo(f"results: {results} (summary.json, report/*.png); total "
+         f"{time.perf_counter() - start:.0f} s")
+    recovered = {}
+    for key, true in (("alpha_par", truth.alpha_par), ("alpha_perp", truth.alpha_perp),
+                      ("alpha", truth.alpha_iso)):
+        s = summary["summary"][key]
+        err = 0.5 * (s["p84"] - s["p16"])
+        recovered[key] = {"truth": true, "median": s["median"], "error": err,
+                          "pull": (s["median"] - true) / err if err > 0 else float("nan")}
+    return {"truth": truth.as_dict(), "recovered": recovered, "summary": summary}
+
+
+def _write_mock_files(config_path, output=None, *, progress: bool = True, echo=print) -> list:
+    """Write the mocks a TOML file's ``[mock]`` table describes (``corrpipe mock``)."""
+    from corrpipe.config import tomllib, validate_section
+    from corrpipe.mocks import MockSettings, write_mocks
+
+    path = Path(config_path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError as exc:
+        raise ConfigError(f"mock config {path} does not exist") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
+    unknown = [k for k in data if k not in ("mock", "cosmology")]
+    if "mock" not in data or unknown:
+        raise ConfigError(f"{path}: a mock config has a [mock] table (and optionally "
+                          f"[cosmology] for the fiducial the expected dilation refers to); "
+                          f"found {sorted(data)}")
+    settings = validate_section(MockSettings, data["mock"], "mock", str(path),
+                                path.resolve().parent)
+    fiducial = None
+    if "cosmology" in data:
+        from corrpipe.cosmology import CosmologySettings
+
+        fiducial = validate_section(CosmologySettings, data["cosmology"], "cosmology",
+                                    str(path), path.resolve().parent).build()
+    folder = Path(output) if output is not None else path.resolve().parent
+    files = write_mocks(settings, folder, fiducial=fiducial, progress=progress, echo=echo)
+    return [f.data for f in files]

@@ -52,6 +52,7 @@ __all__ = [
     "section_classes",
     "config_reference",
     "validate_section",
+    "suggest",
 ]
 
 
@@ -70,13 +71,23 @@ class RunSettings:
 def section_classes() -> dict[str, type]:
     """Return the mapping of config table name to its settings dataclass.
 
-    Imported lazily so that reading a config does not import numba kernels.
+    ``[run]``, every per-analysis table, then the batch-scope tables (those may stand only at
+    the top level, not in ``[analyses.NAME]``). The stage registry is asked at call time, not
+    when this module is imported; stage modules never import the config loader.
     """
-    from corrpipe.stages import stage_section_classes
+    from corrpipe.stages import batch_tables, config_tables
 
     classes = {"run": RunSettings}
-    classes.update(stage_section_classes())
+    classes.update(config_tables())
+    classes.update(batch_tables())
     return classes
+
+
+def batch_table_names() -> tuple[str, ...]:
+    """Names of the batch-scope config tables (top level only)."""
+    from corrpipe.stages import batch_tables
+
+    return tuple(batch_tables())
 
 
 @dataclass(frozen=True)
@@ -106,6 +117,17 @@ class RunConfig:
     text: str
     run: RunSettings
     analyses: tuple[AnalysisConfig, ...]
+    batch: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+
+    def __getattr__(self, item: str) -> Any:
+        batch = object.__getattribute__(self, "batch")
+        if item in batch:
+            return batch[item]
+        raise AttributeError(item)
+
+    def batch_section_dict(self, name: str) -> dict:
+        """Return a batch-scope table's validated values as a plain dict (for fingerprints)."""
+        return _to_plain(dataclasses.asdict(self.batch[name]))
 
     def analysis(self, name: str) -> AnalysisConfig:
         """Return the analysis called ``name`` (with a suggestion if there is none)."""
@@ -115,7 +137,7 @@ class RunConfig:
         names = [a.name for a in self.analyses]
         raise ConfigError(
             f"{self.path or '<config>'}: no analysis named {name!r}; the config declares "
-            f"{', '.join(names)}{_suggest(name, names)}"
+            f"{', '.join(names)}{suggest(name, names)}"
         )
 
     @property
@@ -131,7 +153,8 @@ class RunConfig:
 
 
 def load_config(path: str | Path, overrides: Mapping[str, Mapping[str, Any]] | None = None,
-                classes: Mapping[str, type] | None = None) -> RunConfig:
+                classes: Mapping[str, type] | None = None,
+                batch_classes: Mapping[str, type] | None = None) -> RunConfig:
     """Read and validate a TOML configuration file.
 
     Parameters
@@ -156,12 +179,14 @@ def load_config(path: str | Path, overrides: Mapping[str, Mapping[str, Any]] | N
                           f"(see configs/ for examples)") from exc
     except OSError as exc:
         raise ConfigError(f"cannot read config file {path}: {exc}") from exc
-    return parse_config(text, source=path, overrides=overrides, classes=classes)
+    return parse_config(text, source=path, overrides=overrides, classes=classes,
+                        batch_classes=batch_classes)
 
 
 def parse_config(text: str, source: str | Path | None = None,
                  overrides: Mapping[str, Mapping[str, Any]] | None = None,
-                 classes: Mapping[str, type] | None = None) -> RunConfig:
+                 classes: Mapping[str, type] | None = None,
+                 batch_classes: Mapping[str, type] | None = None) -> RunConfig:
     """Validate the TOML ``text`` of a configuration (see :func:`load_config`)."""
     where = str(source) if source is not None else "<config>"
     base_dir = Path(source).resolve().parent if source is not None else Path.cwd()
@@ -176,19 +201,24 @@ def parse_config(text: str, source: str | Path | None = None,
     default_classes = classes is None
     if default_classes:
         classes = section_classes()
+        batch_names = batch_table_names()
     else:
-        classes = {"run": RunSettings, **classes}
+        classes = {"run": RunSettings, **classes, **(batch_classes or {})}
+        batch_names = tuple(batch_classes or ())
     allowed_tables = list(classes) + ["analyses"]
     for table in data:
         if table not in allowed_tables:
-            raise ConfigError(f"{where}: unknown table [{table}]{_suggest(table, allowed_tables)}; "
+            raise ConfigError(f"{where}: unknown table [{table}]{suggest(table, allowed_tables)}; "
                               f"allowed tables: {', '.join(allowed_tables)}")
         if not isinstance(data[table], dict):
             raise ConfigError(f"{where}: '{table}' must be a table ([{table}]), got "
                               f"{type(data[table]).__name__}")
 
     run = validate_section(RunSettings, data.get("run", {}), "run", where, base_dir)
-    stage_tables = {k: v for k, v in data.items() if k not in ("run", "analyses")}
+    stage_tables = {k: v for k, v in data.items()
+                    if k not in ("run", "analyses") and k not in batch_names}
+    batch = {table: validate_section(classes[table], data.get(table, {}), table, where, base_dir)
+             for table in batch_names}
     declared = data.get("analyses", {})
     if not declared:
         declared = {"main": {}}
@@ -201,15 +231,18 @@ def parse_config(text: str, source: str | Path | None = None,
                               f"'-' and '_' (it names a folder)")
         sections, raw = {}, {}
         for table in extra:
+            if table in batch_names:
+                raise ConfigError(f"{where}: [analyses.{name}] cannot set '{table}': [{table}] "
+                                  f"applies to the whole batch; set it at the top level")
             if table not in classes or table == "run":
-                options = [t for t in classes if t != "run"]
+                options = [t for t in classes if t != "run" and t not in batch_names]
                 raise ConfigError(f"{where}: [analyses.{name}] has unknown table '{table}'"
-                                  f"{_suggest(table, options)}; it may override: "
+                                  f"{suggest(table, options)}; it may override: "
                                   f"{', '.join(options)}")
             if not isinstance(extra[table], dict):
                 raise ConfigError(f"{where}: [analyses.{name}].{table} must be a table")
         for table, cls in classes.items():
-            if table == "run":
+            if table == "run" or table in batch_names:
                 continue
             merged = dict(stage_tables.get(table, {}))
             merged.update(extra.get(table, {}))
@@ -219,7 +252,7 @@ def parse_config(text: str, source: str | Path | None = None,
         analyses.append(AnalysisConfig(name=name, sections=types.MappingProxyType(sections),
                                        raw=types.MappingProxyType(raw)))
     config = RunConfig(path=Path(source) if source is not None else None, text=text, run=run,
-                       analyses=tuple(analyses))
+                       analyses=tuple(analyses), batch=types.MappingProxyType(batch))
     if default_classes:
         _cross_checks(config, where)
     return config
@@ -237,7 +270,7 @@ def validate_section(cls: type, values: Mapping[str, Any], table: str, where: st
     for key in values:
         if key not in fields:
             raise ConfigError(f"{where}: [{table}] has unknown key '{key}'"
-                              f"{_suggest(key, list(fields))}; allowed keys: "
+                              f"{suggest(key, list(fields))}; allowed keys: "
                               f"{', '.join(fields)}")
     kwargs = {}
     for name, f in fields.items():
@@ -324,7 +357,8 @@ def _toml_value(value: Any) -> str:
     return repr(value)
 
 
-def _suggest(word: str, options: list[str]) -> str:
+def suggest(word: str, options: list[str]) -> str:
+    """' (did you mean 'X'?)' for the closest of ``options`` to ``word``, else ''."""
     close = difflib.get_close_matches(word, options, n=1, cutoff=0.6)
     return f" (did you mean '{close[0]}'?)" if close else ""
 
@@ -465,7 +499,7 @@ def _to_plain(obj: Any) -> Any:
 
 def _cross_checks(config: RunConfig, where: str) -> None:
     """Checks that involve more than one table."""
-    from corrpipe.stages import cross_check
+    from corrpipe.stages import check_analysis
 
     for a in config.analyses:
-        cross_check(a, where)
+        check_analysis(a, where)

@@ -4,7 +4,10 @@ A stage is a pure function of its config tables, the outputs of the stages it re
 content of the input files it reads. Its *fingerprint* hashes exactly those, so a rerun skips
 a stage whose fingerprint matches the one stored in its file and reruns only what is
 downstream of a change. This module knows nothing about physics: the stages themselves are
-declared in :mod:`corrpipe.stages`.
+declared in :mod:`corrpipe.stages` (one module each; :mod:`corrpipe.stages.base` has the
+declaration types). Per-analysis stages run once per analysis in its folder; batch-scope stages
+run once per batch, after the analyses, in the batch output folder, and their fingerprint holds
+the fingerprints of every analysis result they read.
 """
 
 from __future__ import annotations
@@ -17,20 +20,20 @@ import json
 import logging
 import os
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable, Iterator, Sequence
+from typing import Any, Iterator, Sequence
 
 import h5py
 
 from corrpipe.checkpoint import (
     SCHEMA_VERSION,
     checkpoint_state,
-    open_checkpoint,
     write_checkpoint,
 )
-from corrpipe.config import AnalysisConfig, RunConfig
-from corrpipe.errors import CorrpipeError, LockError, StageError
+from corrpipe.config import AnalysisConfig, RunConfig, suggest
+from corrpipe.errors import LockError, StageError
+from corrpipe.stages.base import BatchContext, Stage, StageContext
 from corrpipe.version import __version__
 
 __all__ = [
@@ -39,91 +42,16 @@ __all__ = [
     "StageStatus",
     "file_digest",
     "stage_status",
+    "batch_status",
     "run_analysis",
     "run_batch",
+    "run_batch_stages",
     "output_lock",
 ]
 
 log = logging.getLogger(__name__)
 
 LOCK_NAME = ".corrpipe.lock"
-
-
-@dataclass(frozen=True)
-class Stage:
-    """Declaration of one pipeline stage.
-
-    Parameters
-    ----------
-    name : str
-        Stage name; its file is ``<name>.h5`` in the analysis folder.
-    sections : tuple of str
-        Config tables whose values change the stage's output.
-    upstream : tuple of str
-        Stages whose files this stage reads.
-    compute : callable
-        ``compute(ctx) -> fill`` does the work and returns ``fill(h5file)``, which stores the
-        results. Nothing is written to the stage file until ``compute`` returns.
-    inputs : callable
-        ``inputs(analysis) -> list of paths`` of input files whose content enters the
-        fingerprint.
-    enabled : callable
-        ``enabled(analysis) -> bool``; a disabled stage is skipped and not fingerprinted.
-    extra : callable
-        ``extra(analysis) -> dict`` of single settings from other tables that the stage also
-        depends on (enter the fingerprint without making the whole table a dependency).
-    """
-
-    name: str
-    sections: tuple[str, ...]
-    upstream: tuple[str, ...]
-    compute: Callable[["StageContext"], Callable[[h5py.File], None]]
-    inputs: Callable[[AnalysisConfig], Sequence[str | Path]] = lambda a: ()
-    enabled: Callable[[AnalysisConfig], bool] = lambda a: True
-    extra: Callable[[AnalysisConfig], dict] = lambda a: {}
-
-
-@dataclass
-class StageContext:
-    """What a running stage may use."""
-
-    stage: Stage
-    config: RunConfig
-    analysis: AnalysisConfig
-    folder: Path
-    fingerprint: str
-    fingerprints: dict[str, str]
-    show_progress: bool = True
-    extra: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def progress_path(self) -> Path:
-        """Sidecar for partial progress of this stage (deleted when the stage completes)."""
-        return self.sidecar()
-
-    def sidecar(self, label: str = "") -> Path:
-        """A named partial-progress file of this stage (several if the stage has parts).
-
-        Sidecars belong to the stage's fingerprint: a rerun with other settings discards
-        them, and all are deleted once the stage file is written.
-        """
-        tag = f".{label}" if label else ""
-        return self.folder / f".{self.stage.name}.{self.fingerprint[:16]}{tag}.progress.h5"
-
-    def path(self, stage: str) -> Path:
-        """File of another stage of this analysis."""
-        return self.folder / f"{stage}.h5"
-
-    @contextlib.contextmanager
-    def read(self, stage: str) -> Iterator[h5py.File]:
-        """Open the (intact, current) file of an upstream stage."""
-        with open_checkpoint(self.path(stage), self.fingerprints.get(stage)) as h5:
-            yield h5
-
-    def seed(self, salt: str = "") -> int:
-        """A seed for this stage derived from the run seed, the analysis name and ``salt``."""
-        text = f"{self.config.run.seed}:{self.analysis.name}:{self.stage.name}:{salt}"
-        return int.from_bytes(hashlib.sha256(text.encode()).digest()[:8], "little")
 
 
 @dataclass(frozen=True)
@@ -215,7 +143,9 @@ def _stale_reason(path: Path, parts: dict[str, Any]) -> str:
             changes.append(f"[{sec}] {', '.join(keys)} changed")
     for up, fp in parts["upstream"].items():
         if stored.get("upstream", {}).get(up) != fp:
-            changes.append(f"upstream stage '{up}' changed")
+            # a batch stage's upstream is {analysis: {stage: fingerprint}}
+            what = f"results of analysis '{up}'" if isinstance(fp, dict) else f"upstream stage '{up}'"
+            changes.append(f"{what} changed")
     for p, d in parts["inputs"].items():
         if stored.get("inputs", {}).get(p) != d:
             changes.append(f"input file {p} changed")
@@ -306,6 +236,14 @@ def _default_stages(stages: Sequence[Stage] | None) -> Sequence[Stage]:
     return STAGES
 
 
+def _default_batch_stages(stages: Sequence[Stage] | None) -> Sequence[Stage]:
+    if stages is not None:
+        return stages
+    from corrpipe.stages import BATCH_STAGES
+
+    return BATCH_STAGES
+
+
 def run_analysis(config: RunConfig, analysis: AnalysisConfig, *, from_stage: str | None = None,
                  only: str | None = None, force: bool = False, until: str | None = None,
                  show_progress: bool | None = None, stages: Sequence[Stage] | None = None
@@ -336,9 +274,7 @@ def run_analysis(config: RunConfig, analysis: AnalysisConfig, *, from_stage: str
     names = [s.name for s in stages]
     for opt, value in (("--from", from_stage), ("--only", only), ("--until", until)):
         if value is not None and value not in names:
-            from corrpipe.config import _suggest
-
-            raise StageError(f"{opt} {value}: no such stage{_suggest(value, names)}; stages: "
+            raise StageError(f"{opt} {value}: no such stage{suggest(value, names)}; stages: "
                              f"{', '.join(names)}")
     folder = config.analysis_folder(analysis)
     folder.mkdir(parents=True, exist_ok=True)
@@ -395,24 +331,25 @@ def _run_stage(stage: Stage, config: RunConfig, analysis: AnalysisConfig, folder
                fp: str, fps: dict[str, str], parts: dict[str, Any], show: bool) -> None:
     ctx = StageContext(stage=stage, config=config, analysis=analysis, folder=folder,
                        fingerprint=fp, fingerprints=dict(fps), show_progress=show)
+    _execute(stage, ctx, config, analysis.name, folder, fp, parts)
+
+
+def _execute(stage: Stage, ctx: Any, config: RunConfig, label: str, folder: Path, fp: str,
+             parts: dict[str, Any]) -> None:
+    """Compute a stage and write its file atomically; remove its finished sidecars."""
     mine = f".{stage.name}.{fp[:16]}"
     for old in folder.glob(f".{stage.name}.*.progress.h5"):
         if not old.name.startswith(mine):
             old.unlink()
     for tmp in folder.glob(f".{stage.name}.h5.tmp-*"):  # left by a killed run; we hold the lock
         tmp.unlink()
-    log.info("[%s] %s: running", analysis.name, stage.name)
+    log.info("[%s] %s: running", label, stage.name)
     t0 = time.perf_counter()
-    try:
-        fill = stage.compute(ctx)
-    except CorrpipeError:
-        raise
-    except KeyboardInterrupt:
-        raise
+    fill = stage.compute(ctx)
     provenance = {
         "config_text": config.text,
         "config_path": str(config.path) if config.path else "",
-        "analysis": analysis.name,
+        "analysis": label,
         "fingerprint_parts": json.dumps(parts, sort_keys=True, default=str),
         "input_digests": json.dumps(parts["inputs"], sort_keys=True),
         "corrpipe_version": __version__,
@@ -420,15 +357,198 @@ def _run_stage(stage: Stage, config: RunConfig, analysis: AnalysisConfig, folder
     write_checkpoint(folder / f"{stage.name}.h5", stage.name, fp, fill, provenance)
     for done in folder.glob(f"{mine}*.progress.h5"):
         done.unlink()
-    log.info("[%s] %s: done in %.1f s", analysis.name, stage.name, time.perf_counter() - t0)
+    log.info("[%s] %s: done in %.1f s", label, stage.name, time.perf_counter() - t0)
 
 
 def run_batch(config: RunConfig, *, analyses: Sequence[str] | None = None,
+              stages: Sequence[Stage] | None = None,
+              batch_stages: Sequence[Stage] | None = None,
               **kwargs: Any) -> dict[str, dict[str, str]]:
-    """Run every analysis of a configuration (or the named ones) under the output lock."""
+    """Run every analysis of a configuration (or the named ones), then the batch-scope stages,
+    under the output lock.
+
+    ``from_stage``, ``only``, ``force`` and ``until`` (see :func:`run_analysis`) may also name a
+    batch-scope stage: ``only`` a batch stage runs just that stage on the stored results of
+    the analyses (which must be up to date); ``until`` a per-analysis stage skips the batch
+    stages. Batch stages whose analyses were not all run or are not up to date are skipped
+    with a log line. The batch stages' outcomes appear under the key ``"<batch>"``.
+    """
+    if batch_stages is None and stages is not None:
+        batch_stages = ()  # a caller's own stage list has no batch stages unless it says so
+    stages = _default_stages(stages)
+    batch_stages = _default_batch_stages(batch_stages)
+    batch_names = [s.name for s in batch_stages]
+    only, until = kwargs.get("only"), kwargs.get("until")
+    from_stage, force = kwargs.get("from_stage"), kwargs.get("force", False)
     chosen = [config.analysis(n) for n in analyses] if analyses else list(config.analyses)
-    results = {}
+    results: dict[str, dict[str, str]] = {}
     with output_lock(config.output):
-        for analysis in chosen:
-            results[analysis.name] = run_analysis(config, analysis, **kwargs)
+        if only not in batch_names:
+            per = dict(kwargs)
+            for key in ("from_stage", "until"):
+                if per.get(key) in batch_names:
+                    per[key] = None
+            _check_stage_option(stages, batch_names, per)
+            for analysis in chosen:
+                results[analysis.name] = run_analysis(config, analysis, stages=stages, **per)
+        if batch_stages and (until is None or until in batch_names):
+            results[BATCH_KEY] = run_batch_stages(
+                config, stages=batch_stages, analysis_stages=stages,
+                only=only if only in batch_names else None,
+                force=force or from_stage in [s.name for s in stages],
+                from_stage=from_stage if from_stage in batch_names else None,
+                show_progress=kwargs.get("show_progress"), locked=True,
+                required=only in batch_names)
     return results
+
+
+#: Key of the batch-scope stages in the outcome of :func:`run_batch`.
+BATCH_KEY = "<batch>"
+
+
+def _check_stage_option(stages: Sequence[Stage], batch_names: Sequence[str],
+                        options: dict[str, Any]) -> None:
+    names = [s.name for s in stages] + list(batch_names)
+    for opt, key in (("--from", "from_stage"), ("--only", "only"), ("--until", "until")):
+        value = options.get(key)
+        if value is not None and value not in names:
+            raise StageError(f"{opt} {value}: no such stage{suggest(value, names)}; stages: "
+                             f"{', '.join(names)}")
+
+
+def _batch_analyses(stage: Stage, config: RunConfig) -> list[AnalysisConfig]:
+    names = stage.analyses(config) if stage.analyses is not None else None
+    if not names:
+        return list(config.analyses)
+    return [config.analysis(n) for n in names]
+
+
+def _batch_parts(stage: Stage, config: RunConfig, analysis_stages: Sequence[Stage]
+                 ) -> tuple[dict[str, Any], dict[str, dict[str, str]], list[str]]:
+    """Fingerprint parts of a batch stage, the current fingerprints of the analysis stages it
+    reads, and why any of them is not usable (missing/stale/damaged)."""
+    upstream: dict[str, dict[str, str]] = {}
+    problems: list[str] = []
+    for analysis in _batch_analyses(stage, config):
+        folder = config.analysis_folder(analysis)
+        fps, _ = _expected(analysis_stages, analysis, folder if folder.exists() else None)
+        upstream[analysis.name] = {}
+        for name in stage.upstream:
+            if name not in fps:
+                problems.append(f"analysis '{analysis.name}' has no stage '{name}'")
+                continue
+            state, stored = checkpoint_state(folder / f"{name}.h5")
+            if state != "ok":
+                problems.append(f"analysis '{analysis.name}': stage '{name}' is "
+                                f"{state.split(': ', 1)[0]}")
+            elif stored != fps[name]:
+                problems.append(f"analysis '{analysis.name}': stage '{name}' is stale")
+            upstream[analysis.name][name] = fps[name]
+    cache = config.output if config.output.exists() else None
+    parts = {
+        "stage": stage.name,
+        "schema": SCHEMA_VERSION,
+        "sections": {s: config.batch_section_dict(s) for s in stage.sections},
+        "upstream": upstream,
+        "inputs": {str(Path(p)): file_digest(p, cache) for p in stage.inputs(config)},
+        "extra": stage.extra(config),
+    }
+    return parts, upstream, problems
+
+
+def batch_status(config: RunConfig, stages: Sequence[Stage] | None = None,
+                 analysis_stages: Sequence[Stage] | None = None) -> list[StageStatus]:
+    """Return the status of every batch-scope stage, in order."""
+    stages = _default_batch_stages(stages)
+    analysis_stages = _default_stages(analysis_stages)
+    out = []
+    for stage in stages:
+        if not stage.enabled(config):
+            out.append(StageStatus(stage.name, "disabled", "not enabled in the config", None))
+            continue
+        parts, _, problems = _batch_parts(stage, config, analysis_stages)
+        fp = _hash(parts)
+        path = config.output / f"{stage.name}.h5"
+        state, stored = checkpoint_state(path)
+        if problems:
+            out.append(StageStatus(stage.name, "missing" if state == "missing" else "stale",
+                                   "waits for " + "; ".join(problems), fp))
+        elif state == "missing":
+            out.append(StageStatus(stage.name, "missing", "not computed yet", fp))
+        elif state != "ok":
+            out.append(StageStatus(stage.name, "damaged", state.split(": ", 1)[-1], fp))
+        elif stored != fp:
+            out.append(StageStatus(stage.name, "stale", _stale_reason(path, parts), fp))
+        else:
+            out.append(StageStatus(stage.name, "done", "up to date", fp))
+    return out
+
+
+def run_batch_stages(config: RunConfig, *, stages: Sequence[Stage] | None = None,
+                     analysis_stages: Sequence[Stage] | None = None, only: str | None = None,
+                     from_stage: str | None = None, force: bool = False,
+                     show_progress: bool | None = None, locked: bool = False,
+                     required: bool = True) -> dict[str, str]:
+    """Run the batch-scope stages on the stored results of the analyses.
+
+    Parameters
+    ----------
+    only, from_stage, force
+        As for :func:`run_analysis`, over the batch stages.
+    locked : bool
+        The caller already holds the output lock.
+    required : bool
+        Raise :class:`StageError` when an analysis result a stage reads is missing or stale
+        (otherwise the stage is skipped with a log line).
+
+    Returns
+    -------
+    dict
+        ``{stage: "ran" | "skipped" | "disabled" | "waiting"}``.
+    """
+    stages = _default_batch_stages(stages)
+    analysis_stages = _default_stages(analysis_stages)
+    names = [s.name for s in stages]
+    for opt, value in (("--only", only), ("--from", from_stage)):
+        if value is not None and value not in names:
+            raise StageError(f"{opt} {value}: no such batch stage{suggest(value, names)}; "
+                             f"batch stages: {', '.join(names) or 'none'}")
+    show = config.run.progress if show_progress is None else show_progress
+    outcome: dict[str, str] = {}
+    lock = contextlib.nullcontext() if locked else output_lock(config.output)
+    with lock:
+        rerun_rest = force
+        for stage in stages:
+            if only is not None and stage.name != only:
+                continue
+            if not stage.enabled(config):
+                outcome[stage.name] = "disabled"
+                continue
+            if stage.name == from_stage:
+                rerun_rest = True
+            parts, upstream, problems = _batch_parts(stage, config, analysis_stages)
+            if problems:
+                message = (f"batch stage '{stage.name}' needs the stored results of the "
+                           f"analyses: {'; '.join(problems)}; run 'corrpipe run' on the config "
+                           f"first")
+                if required:
+                    raise StageError(message)
+                log.warning("%s; skipped", message)
+                outcome[stage.name] = "waiting"
+                continue
+            fp = _hash(parts)
+            path = config.output / f"{stage.name}.h5"
+            state, stored = checkpoint_state(path)
+            if state == "ok" and stored == fp and not rerun_rest and only is None:
+                log.info("[batch] %s: up to date, skipped", stage.name)
+                outcome[stage.name] = "skipped"
+                continue
+            if state.startswith("damaged"):
+                log.warning("[batch] %s: %s; recomputing", stage.name, state)
+            ctx = BatchContext(stage=stage, config=config,
+                               analyses=tuple(_batch_analyses(stage, config)),
+                               folder=config.output, fingerprint=fp, fingerprints=upstream,
+                               show_progress=show)
+            _execute(stage, ctx, config, "<batch>", config.output, fp, parts)
+            outcome[stage.name] = "ran"
+    return outcome

@@ -40,7 +40,7 @@ from corrpipe.config import load_config
 from corrpipe.covariance import hartlap_factor, jackknife_from_counts
 from corrpipe.errors import CorrpipeError
 from corrpipe.fit.run import build_likelihood
-from corrpipe.stages import read_counts
+from corrpipe.stages.counts import read_counts
 
 WEIGHTINGS = ("standard", "mohammad_percival")
 

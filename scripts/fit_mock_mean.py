@@ -128,7 +128,7 @@ def fit_settings(analysis, overrides: list[str]):
     """The [fit] settings the pipeline fits ``analysis`` with, plus ``KEY=VALUE`` overrides
     (TOML values, checked like the config's [fit] table)."""
     from corrpipe.fit import FitSettings
-    from corrpipe.stages import fit_settings_of
+    from corrpipe.stages.fit import fit_settings_of
 
     settings = fit_settings_of(analysis)  # the post-reconstruction model when reconstructed
     if not overrides:

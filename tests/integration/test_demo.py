@@ -13,7 +13,7 @@ import json
 import pytest
 
 from corrpipe.mocks import expected_dilation
-from corrpipe.stages import run_demo
+from corrpipe.api import demo as run_demo
 
 
 @pytest.mark.slow

@@ -39,7 +39,15 @@ class Gamma:
     power: float = setting(2.0, "exponent")
 
 
+@dataclass(frozen=True)
+class Delta:
+    """Batch stage total (top-level table only)."""
+
+    scale: float = setting(1.0, "multiplies the sum over analyses")
+
+
 CLASSES = {"alpha": Alpha, "beta": Beta, "gamma": Gamma}
+BATCH_CLASSES = {"delta": Delta}
 CALLS: list[str] = []
 
 
@@ -68,6 +76,18 @@ def _c(ctx):
         t = h5["total"][()]
     return lambda h5: h5.create_dataset("y", data=t ** ctx.analysis.gamma.power)
 
+
+def _total(ctx):
+    CALLS.append("total")
+    values = []
+    for analysis in ctx.analyses:
+        with ctx.read_analysis(analysis.name, "c") as h5:
+            values.append(float(h5["y"][0]))
+    total = np.array([sum(values) * ctx.config.delta.scale])
+    return lambda h5: h5.create_dataset("total", data=total)
+
+
+BATCH_STAGES = (Stage("total", ("delta",), ("c",), _total, scope="batch"),)
 
 STAGES = (
     Stage("a", ("alpha",), (), _a, inputs=lambda an: [an.alpha.path]),

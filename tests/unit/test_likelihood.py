@@ -174,7 +174,7 @@ def test_fit_settings_of_switches_to_the_post_reconstruction_model():
     # smoothing (Padmanabhan et al. 2012 conventions; REFERENCES sec. 8); otherwise [fit] as is.
     from types import SimpleNamespace
 
-    from corrpipe.stages import fit_settings_of
+    from corrpipe.stages.fit import fit_settings_of
 
     recon = SimpleNamespace(enabled=True, convention="keep-rsd", smoothing=10.0)
     got = fit_settings_of(SimpleNamespace(fit=FitSettings(), reconstruct=recon))
