@@ -46,6 +46,7 @@ from corrpipe.paircount.engine import (
 )
 from corrpipe.paircount.result import PairCounts
 from corrpipe.settings import setting
+from corrpipe.terminal import show_bars
 
 __all__ = [
     "ENGINE_KINDS",
@@ -416,7 +417,7 @@ def _count_on_dask(client, settings: EngineSettings, prepared: PreparedCount, pr
     partials = sidecar.load() if sidecar is not None else []
     size = min(_dask_batch_size(client, settings, prepared.n_units), _memory_cap(prepared))
     n_done = sum(int(p.unit_ids.size) for p in partials)
-    bar = tqdm(total=prepared.n_units, initial=n_done, unit="unit", disable=not progress,
+    bar = tqdm(total=prepared.n_units, initial=n_done, unit="unit", disable=not show_bars(progress),
                desc=f"pairs {'auto' if prepared.auto else 'cross'} (dask)", leave=False)
     run = _DaskRun(client, settings, prepared, sidecar, partials, bar, on_partial)
     try:
@@ -543,7 +544,8 @@ def map_on_engine(settings: EngineSettings, fn: Callable[[Any], Any], items: Seq
     from tqdm.auto import tqdm
 
     items = list(items)
-    bar = tqdm(total=len(items), unit="item", disable=not progress, desc=desc, leave=False)
+    bar = tqdm(total=len(items), unit="item", disable=not show_bars(progress), desc=desc,
+               leave=False)
     try:
         if settings.kind == "threads":
             results = []

@@ -49,7 +49,7 @@ class ProgressSidecar:
     # ------------------------------------------------------------------ reading
     def load(self) -> list:
         """Partial counts of the batches already done (empty for a new or foreign file)."""
-        from corrpipe.paircount.engine import PartialCounts
+        from corrpipe.paircount.units import PartialCounts
 
         if not self.path.exists():
             self._create()
