@@ -8,7 +8,7 @@ from pathlib import Path
 from typing import Any, Callable, Sequence
 
 from corrpipe.config import RunConfig, load_config
-from corrpipe.errors import CheckpointError, ConfigError, StageError
+from corrpipe.errors import CheckpointError, StageError
 from corrpipe.pipeline import output_lock, run_analysis, run_batch, stage_status
 
 __all__ = ["check", "status_text", "run", "refit", "refit_external", "summary", "demo",
@@ -229,29 +229,12 @@ def _run_demo(output, *, seed: int = 7, scale: str = "demo", progress: bool = Tr
 
 def _write_mock_files(config_path, output=None, *, progress: bool = True, echo=print) -> list:
     """Write the mocks a TOML file's ``[mock]`` table describes (``corrpipe mock``)."""
-    from corrpipe.config import tomllib, validate_section
-    from corrpipe.mocks import MockSettings, write_mocks
+    from corrpipe.config import load_mock_config
+    from corrpipe.mocks import write_mocks
 
     path = Path(config_path)
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError as exc:
-        raise ConfigError(f"mock config {path} does not exist") from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
-    unknown = [k for k in data if k not in ("mock", "cosmology")]
-    if "mock" not in data or unknown:
-        raise ConfigError(f"{path}: a mock config has a [mock] table (and optionally "
-                          f"[cosmology] for the fiducial the expected dilation refers to); "
-                          f"found {sorted(data)}")
-    settings = validate_section(MockSettings, data["mock"], "mock", str(path),
-                                path.resolve().parent)
-    fiducial = None
-    if "cosmology" in data:
-        from corrpipe.cosmology import CosmologySettings
-
-        fiducial = validate_section(CosmologySettings, data["cosmology"], "cosmology",
-                                    str(path), path.resolve().parent).build()
+    settings, fiducial = load_mock_config(path)
     folder = Path(output) if output is not None else path.resolve().parent
-    files = write_mocks(settings, folder, fiducial=fiducial, progress=progress, echo=echo)
+    files = write_mocks(settings, folder, fiducial=None if fiducial is None else fiducial.build(),
+                        progress=progress, echo=echo)
     return [f.data for f in files]

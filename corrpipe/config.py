@@ -52,6 +52,7 @@ __all__ = [
     "section_classes",
     "config_reference",
     "validate_section",
+    "load_mock_config",
     "suggest",
 ]
 
@@ -503,3 +504,40 @@ def _cross_checks(config: RunConfig, where: str) -> None:
 
     for a in config.analyses:
         check_analysis(a, where)
+
+
+def load_mock_config(path: str | Path) -> tuple[Any, Any]:
+    """Read and validate a mock config: a ``[mock]`` table and an optional ``[cosmology]``.
+
+    Returns
+    -------
+    (MockSettings, CosmologySettings or None)
+        The ``[cosmology]`` table is the fiducial the expected dilations refer to.
+
+    Raises
+    ------
+    ConfigError
+        If the file is missing, not valid TOML, has other tables, or any value is invalid.
+    """
+    from corrpipe.cosmology import CosmologySettings
+    from corrpipe.mocks import MockSettings
+
+    path = Path(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError as exc:
+        raise ConfigError(f"mock config {path} does not exist") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
+    unknown = [k for k in data if k not in ("mock", "cosmology")]
+    if "mock" not in data or unknown:
+        raise ConfigError(f"{path}: a mock config has a [mock] table (and optionally "
+                          f"[cosmology] for the fiducial the expected dilation refers to); "
+                          f"found {sorted(data)}")
+    base = path.resolve().parent
+    settings = validate_section(MockSettings, data["mock"], "mock", str(path), base)
+    fiducial = None
+    if "cosmology" in data:
+        fiducial = validate_section(CosmologySettings, data["cosmology"], "cosmology",
+                                    str(path), base)
+    return settings, fiducial

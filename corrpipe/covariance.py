@@ -19,6 +19,7 @@ from corrpipe.estimators import correlation
 from corrpipe.paircount.result import PairCounts
 from corrpipe.survey.regions import RegionSettings
 from corrpipe.settings import setting
+from corrpipe.terminal import show_bars
 
 __all__ = [
     "CovarianceResult",
@@ -264,7 +265,7 @@ def jackknife_from_counts(counts, estimate_settings, covariance_settings, rppi_c
     cw = _cross_weight(covariance_settings.jackknife_weighting,
                        covariance_settings.cross_weight, n_regions)
     out = []
-    for k in tqdm(range(n_regions), desc="jackknife", disable=not progress):
+    for k in tqdm(range(n_regions), desc="jackknife", disable=not show_bars(progress)):
         est = estimate_from_counts(counts, estimate_settings, rppi_counts, delete_region=k,
                                    cross_weight=cw)
         out.append(est.vector(vector))
@@ -306,7 +307,7 @@ def jackknife_samples(dd: PairCounts, rr, dr=None, *, vector: Callable[[np.ndarr
     n_regions = _n_regions(dd)
     cross_weight = _cross_weight(weighting, cross_weight, n_regions)
     out = []
-    for k in tqdm(range(n_regions), desc="jackknife", disable=not progress):
+    for k in tqdm(range(n_regions), desc="jackknife", disable=not show_bars(progress)):
         xi = correlation(dd, rr, dr, ds=ds, ss=ss, estimator=estimator, delete_region=k,
                          cross_weight=cross_weight)
         out.append(np.asarray(vector(xi), dtype=np.float64))

@@ -47,6 +47,7 @@ __all__ = [
     "run_batch",
     "run_batch_stages",
     "output_lock",
+    "ensure_folder",
 ]
 
 log = logging.getLogger(__name__)
@@ -190,6 +191,27 @@ def stage_status(config: RunConfig, analysis: AnalysisConfig,
 # ----------------------------------------------------------------------------- locking
 
 
+def ensure_folder(folder: Path) -> None:
+    """Create an output folder (and its parents) or raise a one-line :class:`StageError`.
+
+    Raises
+    ------
+    StageError
+        If the path (or one of its parents) is an existing file, or the folder cannot be
+        created (permissions, read-only file system).
+    """
+    folder = Path(folder)
+    for part in (folder, *folder.parents):
+        if part.exists() and not part.is_dir():
+            raise StageError(f"output folder {folder}: {part} is an existing file, not a "
+                             f"folder; set [run] output to a folder path (or move the file)")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StageError(f"output folder {folder} cannot be created ({exc.strerror}); choose "
+                         f"a folder you can write in [run] output") from exc
+
+
 @contextlib.contextmanager
 def output_lock(folder: Path) -> Iterator[None]:
     """Hold an exclusive lock on an output folder for the duration of a run.
@@ -202,9 +224,13 @@ def output_lock(folder: Path) -> Iterator[None]:
     LockError
         If another process holds the lock.
     """
-    folder.mkdir(parents=True, exist_ok=True)
+    ensure_folder(folder)
     lock_path = folder / LOCK_NAME
-    fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError as exc:
+        raise StageError(f"output folder {folder} cannot be written ({exc.strerror}); choose a "
+                         f"folder you can write in [run] output") from exc
     try:
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -277,7 +303,7 @@ def run_analysis(config: RunConfig, analysis: AnalysisConfig, *, from_stage: str
             raise StageError(f"{opt} {value}: no such stage{suggest(value, names)}; stages: "
                              f"{', '.join(names)}")
     folder = config.analysis_folder(analysis)
-    folder.mkdir(parents=True, exist_ok=True)
+    ensure_folder(folder)
     show = config.run.progress if show_progress is None else show_progress
     outcome: dict[str, str] = {}
     fps: dict[str, str] = {}

@@ -12,6 +12,7 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from corrpipe.errors import CheckpointError, InputError
+from corrpipe.terminal import show_bars
 
 __all__ = ["ChainResult", "run_chain", "CHAIN_GROUP"]
 
@@ -214,7 +215,7 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
     converged, tau = False, np.full(n_dim, np.inf)
     reason = ""
     bar = tqdm(total=max_steps, initial=min(done, max_steps), desc="fit: sampling",
-               unit="step", disable=not progress, leave=False)
+               unit="step", disable=not show_bars(progress), leave=False)
     try:
         while True:
             if done > 0 and (done % check_every == 0 or done >= max_steps):

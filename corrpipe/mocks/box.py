@@ -26,6 +26,7 @@ from corrpipe.errors import InputError
 from corrpipe.mocks.settings import MIN_NYQUIST_K
 from corrpipe.mocks.fields import (gaussian_field_fourier, lognormal_gaussian_power,
                                    mesh_variance, power_on_mesh, white_noise_fourier)
+from corrpipe.terminal import show_bars
 
 __all__ = [
     "BoxMock",
@@ -241,7 +242,7 @@ def lognormal_box(
     seed_int, rng = _seed_and_rng(seed)
     n = int(n_mesh)
     stretch = _stretch(alpha_par, alpha_perp, los_axis)
-    bar = tqdm(total=5, desc="lognormal mock", disable=not progress, leave=False)
+    bar = tqdm(total=5, desc="lognormal mock", disable=not show_bars(progress), leave=False)
     p_matter = power_on_mesh(power, n, box_size, stretch)
     p_gauss, clipped = lognormal_gaussian_power(bias**2 * p_matter, box_size)
     var_gauss = mesh_variance(p_gauss, box_size)
@@ -420,7 +421,7 @@ def zeldovich_box(
     if not np.isfinite(bias_smoothing) or bias_smoothing < 0:
         raise InputError(f"bias_smoothing must be >= 0 Mpc/h, got {bias_smoothing!r}")
     stretch = _stretch(alpha_par, alpha_perp, los_axis)
-    bar = tqdm(total=4, desc="Zel'dovich mock", disable=not progress, leave=False)
+    bar = tqdm(total=4, desc="Zel'dovich mock", disable=not show_bars(progress), leave=False)
     p_matter = power_on_mesh(power, n, box_size, stretch)
     sigma_psi = float(np.sqrt(displacement_variance(p_matter, box_size)))
     smooth = np.exp(-mesh.k_squared(n, box_size) * bias_smoothing**2) if bias_smoothing else 1.0

@@ -13,6 +13,7 @@ from corrpipe.recon.settings import ReconResult, ReconSettings
 from corrpipe.recon.solver import (_as_positions, _as_weights, _displacement_at, _smoothing_kernel,
                                    box_displacement, box_geometry, survey_density_contrast,
                                    survey_displacement, survey_geometry)
+from corrpipe.terminal import show_bars
 
 __all__ = ["reconstruct_box", "reconstruct_survey"]
 
@@ -101,7 +102,7 @@ def reconstruct_box(positions: np.ndarray, weights: np.ndarray | None, box_size:
     rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
     seed_value = None if isinstance(seed, np.random.Generator) else int(seed)
     steps = ["paint", "solve", "shift data", "shift randoms"]
-    with tqdm(total=len(steps), desc="reconstruct", disable=not progress, leave=False) as bar:
+    with tqdm(total=len(steps), desc="reconstruct", disable=not show_bars(progress), leave=False) as bar:
         rho = mesh.paint(pos, side, n, w, settings.scheme, 0.0, dt)
         delta = mesh.density_contrast(rho, w.sum() / n ** 3)
         del rho
@@ -191,7 +192,7 @@ def reconstruct_survey(data_positions: np.ndarray, data_weights: np.ndarray | No
     f = float(growth_rate)
     geometry = survey_geometry(d_pos, r_pos, settings)
     dt = settings.dtype
-    with tqdm(total=4, desc="reconstruct", disable=not progress, leave=False) as bar:
+    with tqdm(total=4, desc="reconstruct", disable=not show_bars(progress), leave=False) as bar:
         delta = survey_density_contrast(d_pos, d_w, r_pos, r_w, geometry,
                                         smoothing=settings.smoothing, scheme=settings.scheme,
                                         density_threshold=settings.density_threshold, dtype=dt,

@@ -16,6 +16,7 @@ from corrpipe import mesh
 from corrpipe.errors import InputError, StageError
 from corrpipe.recon.kernels import read_vector_kernel
 from corrpipe.recon.settings import _DEFAULT_N_MESH, MeshGeometry, ReconSettings
+from corrpipe.terminal import show_bars
 
 __all__ = [
     "survey_geometry",
@@ -421,7 +422,7 @@ def survey_displacement(delta_k: np.ndarray, geometry: MeshGeometry, *, bias: fl
     weight = rdt(2.0 / (2.0 + beta))
     history = []
     iterations = 0
-    with tqdm(total=max_iterations, desc="reconstruct: solve", disable=not progress,
+    with tqdm(total=max_iterations, desc="reconstruct: solve", disable=not show_bars(progress),
               leave=False) as bar:
         while True:
             update = spectral.divergence_of_radial(theta, coords, inv_r)

@@ -309,10 +309,9 @@ def sky_catalogue(ra, dec, z, weights: Mapping[str, np.ndarray] | None = None, *
     n_in, n_kept = z.size, int(np.count_nonzero(keep))
     cut_text = f"{z_min:g} <= z < {z_max:g}" if z_max is not None else f"z >= {z_min:g}"
     if n_kept == 0:
-        span = f"{z.min():.4g} to {z.max():.4g}" if z.size else "no rows at all"
         raise InputError(f"{where}: no objects left after the redshift cut {cut_text} (the "
-                         f"file's redshifts span {span}); widen z_min/z_max or check the "
-                         "redshift column")
+                         f"file's redshifts span {z.min():.4g} to {z.max():.4g}); widen "
+                         "z_min/z_max or check the redshift column")
     if n_kept < n_in:
         logger.info("%s: redshift cut %s removed %d of %d rows (%d kept)", where, cut_text,
                     n_in - n_kept, n_in, n_kept)

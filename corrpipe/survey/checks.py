@@ -30,6 +30,12 @@ def _fail(where: str, column: str, bad: np.ndarray, problem: str, fix: str) -> N
                      f"(first rows, counted from 0: {quote_rows(rows)}); {fix}")
 
 
+def _check_not_empty(where: str, lengths: Mapping[str, int]) -> None:
+    if lengths and max(lengths.values()) == 0:
+        raise InputError(f"{where}: the file has no rows (columns {', '.join(lengths)} are "
+                         "empty); give a catalogue with at least one object")
+
+
 def _check_finite(where: str, columns: Mapping[str, np.ndarray]) -> None:
     for name, values in columns.items():
         bad = ~np.isfinite(values)
@@ -71,6 +77,7 @@ def check_sky_columns(where: str, ra: np.ndarray, dec: np.ndarray, z: np.ndarray
     if len(set(lengths.values())) > 1:
         raise InputError(f"{where}: columns have different lengths {lengths}; every column "
                          "needs one value per object")
+    _check_not_empty(where, lengths)
     _check_finite(where, {names["ra"]: ra, names["dec"]: dec, names["z"]: z, **weights})
     bad = (dec < -90.0) | (dec > 90.0)
     if np.any(bad):
@@ -110,6 +117,7 @@ def check_box_columns(where: str, positions: Mapping[str, np.ndarray], box_size:
     if len(set(lengths.values())) > 1:
         raise InputError(f"{where}: columns have different lengths {lengths}; every column "
                          "needs one value per object")
+    _check_not_empty(where, lengths)
     _check_finite(where, {**positions, **weights})
     margin = wrap_tolerance * box_size
     for name, values in positions.items():

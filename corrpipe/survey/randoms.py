@@ -18,6 +18,7 @@ from tqdm.auto import tqdm
 from corrpipe.errors import ConfigError, InputError
 from corrpipe.survey.footprint import (Footprint, FootprintMismatchWarning, footprint_from_data)
 from corrpipe.settings import setting
+from corrpipe.terminal import show_bars
 
 __all__ = [
     "RandomCatalogue",
@@ -186,7 +187,7 @@ def make_randoms(footprint: Footprint, data_z, data_weights=None, *,
     hi = float(data_z.max()) if z_max is None else float(z_max)
 
     parts = []
-    with tqdm(total=n_randoms, desc="randoms", unit="pt", disable=not progress) as bar:
+    with tqdm(total=n_randoms, desc="randoms", unit="pt", disable=not show_bars(progress)) as bar:
         left = n_randoms
         while left > 0:
             m = min(_CHUNK, left)

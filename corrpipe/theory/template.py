@@ -33,6 +33,7 @@ from corrpipe.errors import InputError
 from corrpipe.theory.hankel import pk_to_xi_grid
 from corrpipe.theory.kernels import dilated_projection
 from corrpipe.theory.linear_power import LinearPower
+from corrpipe.terminal import show_bars
 
 __all__ = [
     "BAOTemplate",
@@ -237,7 +238,7 @@ class BAOTemplate:
         a = np.asarray(sigma_par_values, dtype=float)
         b = np.asarray(sigma_perp_values, dtype=float)
         out = np.empty((a.size, b.size, 3, 3, self.grid.size))
-        with tqdm(total=a.size * b.size, desc="fit: damping grid", disable=not progress,
+        with tqdm(total=a.size * b.size, desc="fit: damping grid", disable=not show_bars(progress),
                   leave=False) as bar:
             for i, sa in enumerate(a):
                 for j, sb in enumerate(b):
