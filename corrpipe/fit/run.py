@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 from pathlib import Path
 from typing import Any, Sequence
@@ -14,11 +15,12 @@ from corrpipe.fit.likelihood import Likelihood
 from corrpipe.fit.result import FitResult, dilations_from_samples, summarise_samples
 from corrpipe.fit.sampler import run_chain
 from corrpipe.fit.settings import FitSettings
+from corrpipe.theory.damping import zeldovich_damping
 from corrpipe.theory.linear_power import LinearPower
 from corrpipe.theory.template import BAOTemplate
 
 __all__ = ["fit_multipoles", "build_linear_power", "build_likelihood", "best_fit",
-           "bao_detection", "prior_edges",
+           "bao_detection", "prior_edges", "resolve_damping",
            "alpha_profile"]
 
 _PENALTY = 1e30
@@ -33,6 +35,22 @@ def build_linear_power(cosmology: Any, z: float, settings: FitSettings) -> Linea
                                      A_s=settings.A_s)
 
 
+def resolve_damping(settings: FitSettings, linear_power: LinearPower, cosmology: Any,
+                    z_eff: float) -> FitSettings:
+    """Settings with empty damping scales filled from the linear power when
+    ``damping_model = "zeldovich"`` (:func:`corrpipe.theory.damping.zeldovich_damping`);
+    unchanged otherwise or when both scales are set."""
+    if settings.damping_model != "zeldovich" or (settings.sigma_par is not None
+                                                 and settings.sigma_perp is not None):
+        return settings
+    par, perp = zeldovich_damping(linear_power, float(np.asarray(cosmology.growth_rate(z_eff))),
+                                  reconstructed=settings.reconstructed,
+                                  smoothing_radius=settings.smoothing_radius)
+    return dataclasses.replace(
+        settings, sigma_par=par if settings.sigma_par is None else settings.sigma_par,
+        sigma_perp=perp if settings.sigma_perp is None else settings.sigma_perp)
+
+
 def build_likelihood(s, data_vector, covariance, ells: Sequence[int], *, cosmology: Any,
                      z_eff: float, settings: FitSettings = FitSettings(),
                      precision_factor: float = 1.0,
@@ -42,6 +60,7 @@ def build_likelihood(s, data_vector, covariance, ells: Sequence[int], *, cosmolo
     settings.validate()
     lp = linear_power if linear_power is not None else build_linear_power(cosmology, z_eff,
                                                                           settings)
+    settings = resolve_damping(settings, lp, cosmology, z_eff)
     template = BAOTemplate.from_settings(lp, settings)
     return Likelihood(s, data_vector, covariance, ells, template, settings,
                       precision_factor=precision_factor, progress=progress)
@@ -196,8 +215,6 @@ def bao_detection(like: Likelihood, best: np.ndarray) -> dict:
         ``chi2_bao``, ``chi2_no_bao``, ``delta_chi2`` and ``significance_sigma``
         (sqrt of Delta chi^2, 0 when the no-BAO model fits as well).
     """
-    import dataclasses
-
     lp = like.template.linear_power
     smooth = dataclasses.replace(lp, power=np.array(lp.power_nowiggle, copy=True),
                                  source=f"{lp.source} without BAO")

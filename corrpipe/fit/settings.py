@@ -79,6 +79,12 @@ class FitSettings:
     sigma_perp: float | None = setting(None, "BAO damping across the line of sight (empty: "
                                        "6 pre-, 2.5 post-reconstruction)", unit="Mpc/h",
                                        low=0.0, high=30.0)
+    damping_model: str = setting("fixed", "what an empty sigma_par or sigma_perp takes: "
+                                 "'fixed' (the values above) or 'zeldovich' (from the linear "
+                                 "power at z_eff: Sigma_perp^2 = int P dk / 3 pi^2, Sigma_par = "
+                                 "(1 + f) Sigma_perp, after reconstruction weighted by "
+                                 "(1 - S)^2), which follows D(z) sigma8",
+                                 choices=("fixed", "zeldovich"))
     sigma_s: float = setting(4.0, "finger-of-god damping scale", unit="Mpc/h", low=0.0,
                              high=30.0)
     sigma_prior_width: float = setting(0.0, "Gaussian prior width on sigma_par and sigma_perp, "
