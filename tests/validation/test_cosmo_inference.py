@@ -113,3 +113,48 @@ def test_chain_density_likelihood_agrees_with_gaussian_for_gaussian_bins():
     gauss = laplace(DistanceLikelihood(space, data))
     exact = best_fit(DistanceLikelihood(space, data, densities))
     assert np.all(np.abs(exact - gauss["best_fit"]) < 0.2 * gauss["errors"])
+
+
+def test_bbn_prior_gives_the_published_h0():
+    # DESI 2024 VI (arXiv:2404.03002) BAO + BBN under flat ΛCDM: H0 = 68.53 +- 0.80 km/s/Mpc
+    # [from memory], with the BBN prior omega_b = 0.02218 +- 0.00055 (REFERENCES §14 [from
+    # memory]); r_d here comes from the Aubourg et al. (2015) fitting formula, theirs from a
+    # Boltzmann code, so agreement to 0.3 sigma is what the formula's ~0.1-0.2 % allows.
+    space = ParameterSpace(ExpansionModel("flat-lcdm"), omega_b_prior=(0.02218, 0.00055))
+    like = DistanceLikelihood(space, read_external(TABLE))
+    fit = laplace(like)
+    i = space.names.index("h")
+    h0, err = 100 * fit["best_fit"][i], 100 * fit["errors"][i]
+    assert abs(h0 - 68.53) < 0.3 * 0.80
+    assert abs(err / 0.80 - 1) < 0.10
+
+
+def test_r_d_prior_propagates_to_h0_errors():
+    # H0 = 100 h_rd / r_d: with BAO fixing h_rd and an independent Gaussian r_d prior,
+    # sigma(H0)/H0 = sqrt[(sigma_hrd/h_rd)^2 + (sigma_rd/r_d)^2] (first-order error
+    # propagation; common practice). Prior: Planck 2018 r_drag 147.09 +- 0.26 Mpc (§2).
+    bao = laplace(DistanceLikelihood(ParameterSpace(ExpansionModel("flat-lcdm")),
+                                     read_external(TABLE)))
+    space = ParameterSpace(ExpansionModel("flat-lcdm"), r_d_prior=(147.09, 0.26))
+    fit = laplace(DistanceLikelihood(space, read_external(TABLE)))
+    h_rd, s_hrd = bao["best_fit"][1], bao["errors"][1]
+    h = fit["best_fit"][space.names.index("h")]
+    want = h * np.hypot(s_hrd / h_rd, 0.26 / 147.09)
+    assert fit["errors"][space.names.index("h")] == pytest.approx(want, rel=0.02)
+    # the radiation density now follows the sampled h; h_rd barely moves (< 0.05 sigma)
+    assert abs(fit["best_fit"][1] - h_rd) < 0.05 * s_hrd
+
+
+def test_interrupted_chain_resumes_to_the_uninterrupted_one(tmp_path):
+    # The resumable emcee machinery of the BAO fit (corrpipe.fit.sampler): a chain stopped
+    # at 400 steps and continued to 800 equals one run straight to 800 (common practice:
+    # the same seed and stored generator state give the same chain).
+    like = DistanceLikelihood(ParameterSpace(ExpansionModel("flat-lcdm")),
+                              read_external(TABLE))
+    kw = dict(seed=9, progress=False, check_every=200, tau_factor=1e6)
+    part = sample_posterior(like, progress_path=tmp_path / "p.h5", max_steps=400, **kw)
+    assert not part.converged
+    resumed = sample_posterior(like, progress_path=tmp_path / "p.h5", max_steps=800, **kw)
+    straight = sample_posterior(like, max_steps=800, **kw)
+    assert resumed.convergence["resumed_from"] == 400
+    assert np.array_equal(resumed.chain, straight.chain)
