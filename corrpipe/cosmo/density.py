@@ -69,6 +69,16 @@ class SampleDensity:
         self._interp = RegularGridInterpolator(axes, log_d - self.log_peak, method="linear")
         self.dim = d
 
+    def log_density_many(self, values: np.ndarray) -> np.ndarray:
+        """:meth:`log_density` of an (n, n_dim) array of points (NaN rows give NaN)."""
+        v = np.atleast_2d(np.asarray(values, dtype=float))
+        finite = np.all(np.isfinite(v), axis=1)
+        v = np.where(finite[:, None], v, self.mean[None, :])
+        inside = np.clip(v, self._lo, self._hi)
+        r = v - inside
+        out = self._interp(inside) - 0.5 * np.einsum("ij,jk,ik->i", r, self._precision, r)
+        return np.where(finite, out, np.nan)
+
     def log_density(self, values: np.ndarray) -> float:
         """ln density at ``values`` (shape (n_dim,)) relative to its peak (0 at the peak)."""
         v = np.asarray(values, dtype=float)

@@ -117,6 +117,26 @@ class DistanceLikelihood:
         white = self._white_full @ r
         return float(white @ white)
 
+    def log_posterior_many(self, thetas: np.ndarray) -> np.ndarray:
+        """:meth:`log_posterior` of an (n, n_dim) array of points at once (for emcee)."""
+        thetas = np.atleast_2d(np.asarray(thetas, dtype=float))
+        out = np.full(thetas.shape[0], -np.inf)
+        ok = np.all((thetas >= self.space.low) & (thetas <= self.space.high), axis=1)
+        if not ok.any():
+            return out
+        p = self.space.physical_many(thetas[ok])
+        table = self.grid.over_rd_many(p).reshape(int(ok.sum()), -1)
+        model = table[:, self._flat_index]
+        total = -0.5 * self.space.prior_chi2_many(p)
+        if self._gauss.size:
+            white = (self.data.values[self._gauss] - model[:, self._gauss]) @ self._white.T
+            total -= 0.5 * np.einsum("ij,ij->i", white, white)
+        for label, dens in self.densities.items():
+            total += dens.log_density_many(model[:, self._density_rows[label]])
+        total = np.where(np.all(np.isfinite(model), axis=1), total, -np.inf)
+        out[ok] = total
+        return out
+
     def log_posterior(self, theta: np.ndarray) -> float:
         """ln posterior up to a constant (-inf outside the flat bounds or unphysical)."""
         theta = np.asarray(theta, dtype=float)

@@ -27,7 +27,7 @@ Z_RANGE = (0.0, 5.0)
 #: c / (100 km/s/Mpc) in Mpc: the Hubble distance times h.
 HUBBLE_DISTANCE_H = 299792.458 / 100.0
 
-_GL_X, _GL_W = np.polynomial.legendre.leggauss(24)
+_GL_X, _GL_W = np.polynomial.legendre.leggauss(10)
 _MAX_SEGMENT = 0.5  # widest redshift interval one Gauss–Legendre rule covers
 
 
@@ -199,6 +199,38 @@ class ExpansionGrid:
         else:
             dm = chi
         return dm, 1.0 / np.sqrt(e2_z)
+
+    def over_rd_many(self, params: Mapping[str, np.ndarray]) -> np.ndarray:
+        """D_M/r_d and D_H/r_d for many parameter points at once.
+
+        Parameters
+        ----------
+        params : mapping
+            As :meth:`over_rd`, each value an array of shape (n,).
+
+        Returns
+        -------
+        ndarray, shape (n, 3, n_z)
+            D_M/r_d, D_H/r_d and D_V/r_d per point; NaN rows for unphysical histories.
+        """
+        col = {k: np.asarray(v, dtype=float)[:, None] for k, v in params.items()}
+        e2 = self._e2(self._all_z[None, :], self._f_nu_all[None, :], col)
+        bad = np.any(e2 <= 0, axis=1)
+        e2 = np.where(e2 > 0, e2, 1.0)
+        e2_nodes, e2_z = e2[:, :self._n_nodes], e2[:, self._n_nodes:]
+        n = e2.shape[0]
+        seg = (self._weights / np.sqrt(e2_nodes)).reshape(n, self._n_seg, -1).sum(axis=2)
+        chi = np.cumsum(seg, axis=1)[:, self._seg_of_z]
+        ok = col.get("Omega_k", np.zeros((n, 1)))
+        s = np.sqrt(np.abs(ok))
+        safe = np.where(s > 0, s, 1.0)
+        dm = np.where(ok > 0, np.sinh(safe * chi) / safe,
+                      np.where(ok < 0, np.sin(safe * chi) / safe, chi))
+        scale = HUBBLE_DISTANCE_H / col["h_rd"]
+        dm, dh = dm * scale, scale / np.sqrt(e2_z)
+        out = np.stack([dm, dh, np.cbrt(self.z[None, :] * dm**2 * dh)], axis=1)
+        out[bad] = np.nan
+        return out
 
     def distances(self, params: Mapping[str, float]) -> dict[str, np.ndarray]:
         """D_M, D_H and D_V in Mpc (``params`` as :meth:`dimensionless`)."""

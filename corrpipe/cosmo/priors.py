@@ -148,6 +148,31 @@ class ParameterSpace:
             p["r_d"] = p["h_rd"] / p["h"]
         return p
 
+    def physical_many(self, thetas: np.ndarray) -> dict[str, np.ndarray]:
+        """:meth:`physical` for an (n, n_dim) array of points; each value shape (n,)."""
+        thetas = np.atleast_2d(thetas)
+        p = {n: thetas[:, i] for i, n in enumerate(self.names)}
+        if "h" not in p:
+            p["h"] = np.full(thetas.shape[0], self.h_fixed)
+        else:
+            p["H0"] = 100.0 * p["h"]
+        if "omega_b" in p:
+            p["r_d"] = r_d_fitting_formula(p["Omega_m"] * p["h"] ** 2, p["omega_b"],
+                                           self._omega_nu)
+            p["h_rd"] = p["h"] * p["r_d"]
+        elif "H0" in p:
+            p["r_d"] = p["h_rd"] / p["h"]
+        return p
+
+    def prior_chi2_many(self, p: Mapping[str, np.ndarray]) -> np.ndarray:
+        """Sum of squared Gaussian-prior residuals per point."""
+        out = np.zeros(np.shape(p["Omega_m"]))
+        for prior, key in ((self.r_d_prior, "r_d"), (self.H0_prior, "H0"),
+                           (self.omega_b_prior, "omega_b")):
+            if prior is not None:
+                out += ((p[key] - prior[0]) / prior[1]) ** 2
+        return out
+
     def inside(self, theta: np.ndarray) -> bool:
         """True inside the flat prior bounds."""
         return bool(((theta >= self.low) & (theta <= self.high)).all())

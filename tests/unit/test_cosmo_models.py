@@ -95,3 +95,29 @@ def test_figure_of_merit_is_inverse_sqrt_determinant():
     # Albrecht et al. 2006 [from memory]: FoM = 1/sqrt(det C); sigma 0.1, 0.5, r = 0.6
     cov = np.array([[0.01, 0.6 * 0.05], [0.6 * 0.05, 0.25]])
     assert figure_of_merit(cov) == pytest.approx(1.0 / (0.1 * 0.5 * np.sqrt(1 - 0.36)))
+
+
+@pytest.mark.parametrize("kind,curvature,prior", [
+    ("w0wacdm", False, {}), ("wcdm", True, {"r_d_prior": (147.0, 1.0)}),
+    ("flat-lcdm", False, {"omega_b_prior": (0.0222, 0.0005)})])
+def test_vectorised_posterior_equals_the_pointwise_one(kind, curvature, prior):
+    # The batch path emcee uses must equal the pointwise path (itself held to astropy above).
+    from corrpipe.cosmo import (DataVector, DistanceLikelihood, Measurement, ParameterSpace,
+                                SampleDensity)
+
+    z = [0.4, 0.8, 1.4]
+    ms = tuple(Measurement(f"b{i}", zz, q, v) for i, zz in enumerate(z)
+               for q, v in (("DM_over_rd", 10.0 + 8 * zz), ("DH_over_rd", 24.0 - 7 * zz)))
+    cov = np.diag([0.2, 0.5] * 3) ** 2
+    space = ParameterSpace(ExpansionModel(kind, curvature=curvature), **prior)
+    rng = np.random.default_rng(4)
+    dens = {"b1": SampleDensity(rng.multivariate_normal([16.4, 18.4], cov[2:4, 2:4], 2000))}
+    for densities in ({}, dens):
+        like = DistanceLikelihood(space, DataVector(ms, cov, ("x",) * 6), densities)
+        thetas = space.low + (space.high - space.low) * rng.uniform(0.2, 0.8, (40, space.n_dim))
+        thetas[0, 0] = -1.0  # outside the flat prior
+        many = like.log_posterior_many(thetas)
+        one = np.array([like.log_posterior(t) for t in thetas])
+        assert np.array_equal(np.isfinite(many), np.isfinite(one))
+        fin = np.isfinite(one)
+        assert np.allclose(many[fin], one[fin], rtol=1e-12, atol=1e-9)
