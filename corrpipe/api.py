@@ -9,7 +9,8 @@ from typing import Any, Callable, Sequence
 
 from corrpipe.config import RunConfig, load_config
 from corrpipe.errors import CheckpointError, StageError
-from corrpipe.pipeline import BATCH_KEY, output_lock, run_analysis, run_batch, stage_status
+from corrpipe.pipeline import (BATCH_KEY, batch_status, output_lock, run_analysis, run_batch,
+                               stage_status)
 
 __all__ = ["check", "status_text", "run", "refit", "refit_external", "summary", "demo",
            "write_mocks", "cosmology"]
@@ -38,6 +39,12 @@ def status_text(config: str | Path, analyses: Sequence[str] | None = None) -> st
         for st in stage_status(cfg, a):
             reason = "" if st.state == "done" else f"  {st.reason}"
             lines.append(f"  {st.name:<12} {st.state:<8}{reason}".rstrip())
+    batch = [st for st in batch_status(cfg) if st.state != "disabled"]
+    if batch:
+        lines.append(f"batch  ({cfg.output})")
+        for st in batch:
+            reason = "" if st.state == "done" else f"  {st.reason}"
+            lines.append(f"  {st.name:<12} {st.state:<8}{reason}".rstrip())
     return "\n".join(lines)
 
 
@@ -54,6 +61,8 @@ def run(config: str | Path | RunConfig, *, analyses: Sequence[str] | None = None
     for name, stages in outcome.items():
         ran = [s for s, o in stages.items() if o == "ran"]
         if name == BATCH_KEY:
+            if all(o == "disabled" for o in stages.values()):
+                continue
             echo(f"batch: ran {', '.join(ran) if ran else 'nothing (all up to date)'}")
             constraints = cfg.output / "constraints.txt"
             if "cosmology" in stages and constraints.exists():

@@ -71,8 +71,10 @@ def test_stage_runs_after_the_bins_then_skips_and_reruns_alone(two_bins):
         assert h5["cosmology"]["chain"].shape[2] == 2
     # up to date: nothing reruns
     assert api.run(cfg, progress=False)["<batch>"] == {"cosmology": "skipped"}
+    assert "cosmology    done" in api.status_text(cfg)
     # a change of the [expansion] table reruns only the batch stage
     cfg.write_text(cfg.read_text().replace("max_steps = 3000", "max_steps = 3000\nplots = false"))
+    assert "cosmology    stale" in api.status_text(cfg)
     outcome = api.run(cfg, progress=False)
     assert "ran" not in outcome["near"].values() and "ran" not in outcome["far"].values()
     assert outcome["<batch>"] == {"cosmology": "ran"}
