@@ -9,6 +9,7 @@ import h5py
 import numpy as np
 
 from corrpipe.errors import CheckpointError
+from corrpipe.fit.result import json_ready as _clean
 
 __all__ = ["CosmologyResult", "interval_summary", "SCHEMA_VERSION"]
 
@@ -21,22 +22,6 @@ def interval_summary(values: np.ndarray) -> dict:
     return {"median": float(p[2]), "mean": float(np.mean(values)), "std": float(np.std(values)),
             "interval_68": [float(p[1]), float(p[3])], "interval_95": [float(p[0]), float(p[4])],
             "error_minus": float(p[2] - p[1]), "error_plus": float(p[3] - p[2])}
-
-
-def _clean(obj):
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _clean(obj.tolist())
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if np.isfinite(obj) else None
-    if isinstance(obj, np.integer):
-        return int(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    return obj
 
 
 @dataclass
