@@ -9,10 +9,11 @@ from typing import Any, Callable, Sequence
 
 from corrpipe.config import RunConfig, load_config
 from corrpipe.errors import CheckpointError, StageError
-from corrpipe.pipeline import output_lock, run_analysis, run_batch, stage_status
+from corrpipe.pipeline import (BATCH_KEY, batch_status, output_lock, run_analysis, run_batch,
+                               stage_status)
 
 __all__ = ["check", "status_text", "run", "refit", "refit_external", "summary", "demo",
-           "write_mocks"]
+           "write_mocks", "cosmology"]
 
 log = logging.getLogger(__name__)
 
@@ -38,6 +39,12 @@ def status_text(config: str | Path, analyses: Sequence[str] | None = None) -> st
         for st in stage_status(cfg, a):
             reason = "" if st.state == "done" else f"  {st.reason}"
             lines.append(f"  {st.name:<12} {st.state:<8}{reason}".rstrip())
+    batch = [st for st in batch_status(cfg) if st.state != "disabled"]
+    if batch:
+        lines.append(f"batch  ({cfg.output})")
+        for st in batch:
+            reason = "" if st.state == "done" else f"  {st.reason}"
+            lines.append(f"  {st.name:<12} {st.state:<8}{reason}".rstrip())
     return "\n".join(lines)
 
 
@@ -53,6 +60,14 @@ def run(config: str | Path | RunConfig, *, analyses: Sequence[str] | None = None
                         force=force, show_progress=progress)
     for name, stages in outcome.items():
         ran = [s for s, o in stages.items() if o == "ran"]
+        if name == BATCH_KEY:
+            if all(o == "disabled" for o in stages.values()):
+                continue
+            echo(f"batch: ran {', '.join(ran) if ran else 'nothing (all up to date)'}")
+            constraints = cfg.output / "constraints.txt"
+            if "cosmology" in stages and constraints.exists():
+                echo(constraints.read_text().rstrip())
+            continue
         echo(f"analysis '{name}': ran {', '.join(ran) if ran else 'nothing (all up to date)'}")
         text = _summary_text(cfg, cfg.analysis(name))
         if text:
@@ -96,6 +111,39 @@ def refit_external(config: str | Path, multipoles: str | Path, output: str | Pat
                           progress=progress)
     echo(result["text"])
     return result["summary"]
+
+
+def cosmology(config: str | Path | RunConfig, *, force: bool = False, progress: bool = True,
+              echo: Echo = _quiet) -> dict:
+    """Run only the batch-level expansion-history fit on the stored BAO fits.
+
+    Runs whether or not ``[expansion] enabled`` is set, never recounts or refits an analysis,
+    skips when its result is up to date (unless ``force``) and resumes an interrupted chain.
+
+    Returns
+    -------
+    dict
+        The contents of ``constraints.json``.
+
+    Raises
+    ------
+    StageError
+        An analysis it reads has no current fit (run the pipeline first).
+    """
+    import dataclasses
+
+    from corrpipe.pipeline import run_batch_stages
+    from corrpipe.stages.cosmology import STAGE
+
+    cfg = config if isinstance(config, RunConfig) else load_config(config)
+    stage = dataclasses.replace(STAGE, enabled=lambda c: True)
+    outcome = run_batch_stages(cfg, stages=[stage], force=force, show_progress=progress)
+    path = cfg.output / "constraints.json"
+    text = cfg.output / "constraints.txt"
+    echo(f"cosmology: {outcome.get('cosmology', 'not run')}; results in {path}")
+    if text.exists():
+        echo(text.read_text().rstrip())
+    return json.loads(path.read_text())
 
 
 def summary(config: str | Path | RunConfig) -> dict:

@@ -69,6 +69,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--output", type=Path, metavar="DIR",
                    help="with --multipoles: folder for fit.h5 and summary.json")
 
+    p = sub.add_parser("cosmology", help="fit expansion-history models to the stored BAO fits "
+                                         "of a batch ([expansion]); no recount, no refit",
+                       description="Fit flat LCDM, wCDM or w0waCDM (optionally with curvature) "
+                                   "to the distances of every analysis of CONFIG and to the "
+                                   "external files of its [expansion] table.")
+    p.add_argument("config", type=Path, help="TOML configuration file")
+    p.add_argument("--force", action="store_true", help="rerun even if up to date")
+
     p = sub.add_parser("status", help="show each stage as done / stale (and why) / missing")
     _add_run_options(p)
 
@@ -146,6 +154,9 @@ def _dispatch(args: argparse.Namespace) -> int:
                                echo=print)
         else:
             api.refit(args.config, analyses=args.analysis, progress=progress, echo=print)
+        return 0
+    if args.command == "cosmology":
+        api.cosmology(args.config, force=args.force, progress=progress, echo=print)
         return 0
     if args.command == "demo":
         api.demo(args.output, seed=args.seed, scale=args.size, progress=progress, echo=print)

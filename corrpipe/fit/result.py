@@ -11,7 +11,8 @@ import numpy as np
 
 from corrpipe.errors import CheckpointError
 
-__all__ = ["FitResult", "dilations_from_samples", "summarise_samples", "SCHEMA_VERSION"]
+__all__ = ["FitResult", "dilations_from_samples", "summarise_samples", "json_ready",
+           "SCHEMA_VERSION"]
 
 SCHEMA_VERSION = 1
 
@@ -67,6 +68,10 @@ def _to_json(obj: Any) -> Any:
     if isinstance(obj, np.bool_):
         return bool(obj)
     return obj
+
+
+#: Nested dicts/lists/arrays/numpy scalars -> plain JSON types (non-finite floats -> None).
+json_ready = _to_json
 
 
 @dataclass

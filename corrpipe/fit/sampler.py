@@ -118,7 +118,9 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
               n_walkers: int = 32, seed: int = 1, progress_path: str | Path | None = None,
               model_hash: str = "", max_steps: int = 20000, check_every: int = 200,
               tau_factor: float = 50.0, tau_tolerance: float = 0.02,
-              init_scale: np.ndarray | float = 1e-3, progress: bool = True) -> ChainResult:
+              init_scale: np.ndarray | float = 1e-3, progress: bool = True,
+              moves=None, log_prob_many: Callable[[np.ndarray], np.ndarray] | None = None,
+              label: str = "fit") -> ChainResult:
     """Sample a posterior with emcee until the autocorrelation rule is met, resumably.
 
     Parameters
@@ -150,6 +152,14 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
         Gaussian width of the initial ball around ``start`` per parameter.
     progress : bool
         Show a tqdm bar.
+    moves : optional
+        emcee moves (default: emcee's stretch move); e.g. a differential-evolution mixture
+        for curved posteriors.
+    log_prob_many : callable, optional
+        Vectorised log posterior of an (n, n_dim) array of points (emcee ``vectorize``);
+        ``log_prob`` is still used for single points.
+    label : str
+        Names the caller in messages and the progress bar (``fit``, ``cosmology``).
 
     Returns
     -------
@@ -158,8 +168,8 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
     start = np.asarray(start, dtype=float)
     n_dim = start.size
     if n_walkers < 2 * n_dim:
-        raise InputError(f"fit: n_walkers = {n_walkers} must be at least twice the number of "
-                         f"sampled parameters ({n_dim}); raise fit.n_walkers")
+        raise InputError(f"{label}: n_walkers = {n_walkers} must be at least twice the number "
+                         f"of sampled parameters ({n_dim}); raise {label}.n_walkers")
     note = ""
     stored_chain = np.empty((0, n_walkers, n_dim))
     stored_lp = np.empty((0, n_walkers))
@@ -177,10 +187,14 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
                 stored_accepted = np.asarray(backend.accepted, dtype=float)
                 resume_state = backend.random_state
         except OSError as exc:
-            raise CheckpointError(f"fit: cannot open the progress file {path}: {exc}") from exc
+            raise CheckpointError(f"{label}: cannot open the progress file {path}: {exc}") from exc
     # Sampling runs in memory, chunk by chunk; each finished chunk is appended to the
     # progress file in emcee's HDF5 backend layout (one file open per chunk, not per step).
-    sampler = emcee.EnsembleSampler(n_walkers, n_dim, log_prob)
+    if log_prob_many is not None:
+        sampler = emcee.EnsembleSampler(n_walkers, n_dim, log_prob_many, moves=moves,
+                                        vectorize=True)
+    else:
+        sampler = emcee.EnsembleSampler(n_walkers, n_dim, log_prob, moves=moves)
     resumed_from = stored_chain.shape[0]
     tau_history: list = []
     if resumed_from > 0:
@@ -195,8 +209,9 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
         rng = np.random.default_rng(seed)
         scale = np.broadcast_to(np.asarray(init_scale, dtype=float), (n_dim,))
         if not np.isfinite(log_prob(start)):
-            raise InputError("fit: the starting point has zero prior or likelihood; check "
-                             "the priors (alpha range, B range) and the data")
+            raise InputError(f"{label}: the starting point has zero prior or likelihood; check "
+                             f"the priors ({'alpha range, B range' if label == 'fit' else 'bounds'})"
+                             " and the data")
         coords = start + scale * rng.standard_normal((n_walkers, n_dim))
         for i in range(n_walkers):  # keep every walker inside the prior
             tries = 0
@@ -214,7 +229,7 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
     done = resumed_from
     converged, tau = False, np.full(n_dim, np.inf)
     reason = ""
-    bar = tqdm(total=max_steps, initial=min(done, max_steps), desc="fit: sampling",
+    bar = tqdm(total=max_steps, initial=min(done, max_steps), desc=f"{label}: sampling",
                unit="step", disable=not show_bars(progress), leave=False)
     try:
         while True:
@@ -232,7 +247,7 @@ def run_chain(log_prob: Callable[[np.ndarray], float], start: np.ndarray, *,
                 if done >= max_steps:
                     reason = (f"NOT converged: reached max_steps = {max_steps} with max tau "
                               f"= {np.max(tau):.1f} (need {tau_factor:g} x tau steps and a "
-                              "stable tau); raise fit.max_steps")
+                              f"stable tau); raise {label}.max_steps")
                     break
             n_next = min(check_every - done % check_every, max_steps - done)
             accepted_before = np.array(sampler.backend.accepted, dtype=float) \

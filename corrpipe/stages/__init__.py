@@ -14,7 +14,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from corrpipe.stages import counts, covariance, estimate, fit, load, randoms, reconstruct, report
+from corrpipe.stages import (cosmology, counts, covariance, estimate, fit, load, randoms,
+                             reconstruct, report)
 from corrpipe.stages.base import BatchContext, Stage, StageContext
 
 __all__ = [
@@ -30,7 +31,8 @@ __all__ = [
 ]
 
 #: The stage modules in run order (per-analysis stages first, then batch-scope stages).
-STAGE_MODULES = (load, randoms, reconstruct, counts, estimate, covariance, fit, report)
+STAGE_MODULES = (load, randoms, reconstruct, counts, estimate, covariance, fit, report,
+                 cosmology)
 
 #: Per-analysis stages in run order.
 STAGES: tuple[Stage, ...] = tuple(m.STAGE for m in STAGE_MODULES if m.STAGE.scope == "analysis")
