@@ -36,7 +36,7 @@ from pathlib import Path
 from typing import Any, Mapping
 
 from corrpipe.errors import ConfigError
-from corrpipe.settings import setting, setting_info
+from corrpipe.settings import fingerprint_values, setting, setting_info
 
 try:  # Python >= 3.11
     import tomllib
@@ -107,7 +107,7 @@ class AnalysisConfig:
 
     def section_dict(self, name: str) -> dict:
         """Return a table's validated values as a plain dict (for fingerprints)."""
-        return _to_plain(dataclasses.asdict(self.sections[name]))
+        return fingerprint_values(self.sections[name])
 
 
 @dataclass(frozen=True)
@@ -128,7 +128,7 @@ class RunConfig:
 
     def batch_section_dict(self, name: str) -> dict:
         """Return a batch-scope table's validated values as a plain dict (for fingerprints)."""
-        return _to_plain(dataclasses.asdict(self.batch[name]))
+        return fingerprint_values(self.batch[name])
 
     def analysis(self, name: str) -> AnalysisConfig:
         """Return the analysis called ``name`` (with a suggestion if there is none)."""

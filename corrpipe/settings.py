@@ -11,7 +11,7 @@ from __future__ import annotations
 import dataclasses
 from typing import Any, Sequence
 
-__all__ = ["setting", "setting_info"]
+__all__ = ["setting", "setting_info", "fingerprint_values"]
 
 
 def setting(
@@ -26,6 +26,7 @@ def setting(
     high_open: bool = False,
     path: bool = False,
     factory: Any = dataclasses.MISSING,
+    neutral_default: bool = False,
 ) -> Any:
     """Declare one configuration field.
 
@@ -47,6 +48,10 @@ def setting(
         of the config file.
     factory : callable, optional
         Default factory for mutable defaults (use tuples where possible).
+    neutral_default : bool
+        The key was added after results were stored with its table, and its default gives
+        exactly what runs did before it existed. Fingerprints leave it out while it holds the
+        default (:func:`fingerprint_values`), so adding it does not make stored stages stale.
     """
     meta = {
         "doc": doc,
@@ -57,6 +62,7 @@ def setting(
         "low_open": low_open,
         "high_open": high_open,
         "path": path,
+        "neutral_default": neutral_default,
     }
     if factory is not dataclasses.MISSING:
         return dataclasses.field(default_factory=factory, metadata=meta)
@@ -66,6 +72,32 @@ def setting(
 def setting_info(f: dataclasses.Field) -> dict:
     """Return the metadata declared with :func:`setting` (empty values if none)."""
     base = {"doc": "", "unit": None, "choices": None, "low": None, "high": None,
-            "low_open": False, "high_open": False, "path": False}
+            "low_open": False, "high_open": False, "path": False, "neutral_default": False}
     base.update(dict(f.metadata))
     return base
+
+
+def fingerprint_values(settings: Any) -> dict:
+    """The fields of a settings dataclass that identify its results, as a plain dict.
+
+    Every field, except one declared with ``neutral_default=True`` while it holds its
+    default. Tuples become lists (JSON-friendly).
+    """
+    out = {}
+    for f in dataclasses.fields(settings):
+        value = getattr(settings, f.name)
+        if f.metadata.get("neutral_default") and f.default is not dataclasses.MISSING \
+                and value == f.default:
+            continue
+        out[f.name] = _plain(value)
+    return out
+
+
+def _plain(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return _plain(dataclasses.asdict(obj))
+    return obj

@@ -8,7 +8,7 @@ import json
 from dataclasses import dataclass
 
 from corrpipe.errors import ConfigError
-from corrpipe.settings import setting
+from corrpipe.settings import fingerprint_values, setting
 
 __all__ = ["FitSettings", "PRE_RECON_DAMPING", "POST_RECON_DAMPING"]
 
@@ -84,7 +84,7 @@ class FitSettings:
                                  "power at z_eff: Sigma_perp^2 = int P dk / 3 pi^2, Sigma_par = "
                                  "(1 + f) Sigma_perp, after reconstruction weighted by "
                                  "(1 - S)^2), which follows D(z) sigma8",
-                                 choices=("fixed", "zeldovich"))
+                                 choices=("fixed", "zeldovich"), neutral_default=True)
     sigma_s: float = setting(4.0, "finger-of-god damping scale", unit="Mpc/h", low=0.0,
                              high=30.0)
     sigma_prior_width: float = setting(0.0, "Gaussian prior width on sigma_par and sigma_perp, "
@@ -198,5 +198,5 @@ class FitSettings:
 
     def model_hash(self) -> str:
         """Hash of the settings that change the posterior (not the run length)."""
-        d = {k: v for k, v in self.to_dict().items() if k not in _RUN_LENGTH_KEYS}
+        d = {k: v for k, v in fingerprint_values(self).items() if k not in _RUN_LENGTH_KEYS}
         return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]

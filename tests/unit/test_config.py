@@ -124,3 +124,21 @@ def test_readme_config_reference_is_current():
 
     assert config_reference().rstrip() in readme, (
         "README's 'Config reference' is out of date: paste the output of `corrpipe settings`")
+
+
+def test_neutral_default_keys_stay_out_of_fingerprints_until_set():
+    # A key added later whose default reproduces the old behaviour must not make stored
+    # stages stale (resumable, fingerprinted stages: common practice for pipelines).
+    import dataclasses as _dc
+
+    from corrpipe.fit.settings import FitSettings
+    from corrpipe.settings import fingerprint_values
+
+    plain = FitSettings()
+    values = fingerprint_values(plain)
+    assert "damping_model" not in values
+    assert values["sigma_s"] == plain.sigma_s
+    assert set(values) == {f.name for f in _dc.fields(FitSettings)} - {"damping_model"}
+    chosen = FitSettings(damping_model="zeldovich")
+    assert fingerprint_values(chosen)["damping_model"] == "zeldovich"
+    assert chosen.model_hash() != plain.model_hash()
