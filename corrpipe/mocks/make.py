@@ -6,7 +6,7 @@ import dataclasses
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Mapping
 
 import numpy as np
 
@@ -18,6 +18,7 @@ from corrpipe.mocks.survey import (SurveyMock, carve_survey, survey_randoms, tab
                                    write_box_catalogue, write_sky_catalogue)
 
 __all__ = ["MockFiles", "true_cosmology", "mock_power", "make_box_mock", "make_survey_mock",
+           "make_interloper_mix",
            "footprint_of", "nz_of", "write_mocks", "effective_redshift"]
 
 _LOS = {"x": 0, "y": 1, "z": 2}
@@ -89,6 +90,45 @@ def make_box_mock(settings: MockSettings, seed: int, *, cosmology=None, power=No
     if settings.kind == "lognormal":
         return lognormal_box(*args, **common)
     return zeldovich_box(*args, bias_smoothing=settings.bias_smoothing, **common)
+
+
+def make_interloper_mix(settings: MockSettings, seed: int, *, cosmology=None, power=None,
+                        progress: bool = True):
+    """Target box at density (1 - sum f) nbar plus each ``[[mock.interlopers]]`` population,
+    drawn at its true redshift and moved to the assigned frame (:mod:`corrpipe.mocks.interlopers`).
+
+    Population k is drawn with seed ``[seed, 100 + k]``; the target with the plain ``seed``
+    and a reduced density (so its field is the one :func:`make_box_mock` draws).
+    """
+    from corrpipe.mocks.interlopers import interloper_box, mix_box, populations_of
+    from corrpipe.theory.linear_power import LinearPower
+
+    cosmology = true_cosmology(settings) if cosmology is None else cosmology
+    pops = populations_of(settings.interlopers, settings.target_line, settings.redshift,
+                          cosmology, settings.line_medium)
+    keep = 1.0 - sum(p.fraction for p in pops)
+    target = make_box_mock(dataclasses.replace(settings, nbar=settings.nbar * keep,
+                                               interlopers=()), seed,
+                           cosmology=cosmology, power=power, progress=progress)
+    from corrpipe.theory.interlopers import line_mapping
+
+    dtype = np.float32 if settings.precision == "float32" else np.float64
+    boxes = []
+    for k, pop in enumerate(pops, start=1):
+        mapping = line_mapping(cosmology, settings.target_line, pop.line, settings.redshift,
+                               medium=settings.line_medium)
+        z_true = float(mapping.z_true)
+        p_true = LinearPower.eisenstein_hu(cosmology, z=z_true)
+        growth = float(np.asarray(cosmology.growth_rate(z_true))) if settings.rsd else 0.0
+        extra = {"bias_smoothing": settings.bias_smoothing} if settings.kind == "zeldovich" else {}
+        boxes.append(interloper_box(p_true, mapping, settings.box_size, settings.n_mesh,
+                                    settings.nbar * pop.fraction, pop.bias, growth,
+                                    np.random.default_rng([seed, 100 + k]), kind=settings.kind,
+                                    alpha_par=settings.alpha_par,
+                                    alpha_perp=settings.alpha_perp,
+                                    los_axis=_LOS[settings.los_axis], dtype=dtype,
+                                    progress=progress, **extra))
+    return mix_box(target, boxes, [p.fraction for p in pops], rsd=settings.rsd)
 
 
 def zeldovich_expectation(settings: MockSettings, s, ells, *, alpha_par: float = 1.0,
@@ -235,6 +275,11 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
         if settings.geometry == "box":
             box = make_box_mock(settings, seed, cosmology=cosmo, power=power, progress=progress)
             pos = box.redshift_space_positions() if settings.rsd else box.positions
+            mixed = None
+            if settings.interlopers:
+                mixed = make_interloper_mix(settings, seed, cosmology=cosmo, power=power,
+                                            progress=progress)
+                pos = mixed.positions
             z_eff = settings.redshift if settings.redshift > 0 else 1e-3
             dil = Dilation(alpha_par=settings.alpha_par, alpha_perp=settings.alpha_perp,
                            alpha_iso=settings.alpha_par ** (1 / 3) * settings.alpha_perp ** (2 / 3),
@@ -244,7 +289,7 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
                         growth_rate=box.growth_rate)
             data_path = write_box_catalogue(out / (stem + ext), pos, meta=meta,
                                             overwrite=overwrite)
-            n_obj = len(box)
+            n_obj = len(box) if mixed is None else len(pos)
         else:
             sky = make_survey_mock(settings, seed, cosmology=cosmo, power=power,
                                    progress=progress)
@@ -272,6 +317,8 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
                  "n_objects": n_obj, "dilation": dil.as_dict(),
                  "true_cosmology": _jsonable(dataclasses.asdict(cosmo)),
                  "fiducial_cosmology": _jsonable(dataclasses.asdict(fid))}
+        if settings.geometry == "box" and mixed is not None:
+            truth["interlopers"] = mixed.truth()
         truth_path = out / (stem + "_truth.json")
         tmp = truth_path.with_suffix(".json.part")
         tmp.write_text(json.dumps(truth, indent=2))
@@ -285,7 +332,7 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
 
 
 def _jsonable(obj):
-    if isinstance(obj, dict):
+    if isinstance(obj, Mapping):
         return {k: _jsonable(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
         return [_jsonable(v) for v in obj]

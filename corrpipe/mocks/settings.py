@@ -4,11 +4,15 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any, Mapping
 
-from corrpipe.errors import ConfigError
+import numpy as np
+
+from corrpipe.errors import ConfigError, InputError
 from corrpipe.settings import setting
+from corrpipe.theory.interlopers import line_mapping, rest_wavelength
 
-__all__ = ["MockSettings", "MIN_NYQUIST_K"]
+__all__ = ["MockSettings", "MIN_NYQUIST_K", "InterloperPopulation", "populations_of"]
 
 #: Smallest Nyquist wavenumber (h/Mpc) a mock mesh may have: BAO fits use modes up to
 #: k ~ 0.2-0.3 h/Mpc and separations down to ~30 Mpc/h (common practice).
@@ -86,6 +90,13 @@ class MockSettings:
                               "reaches beyond it")
     randoms_factor: float = setting(10.0, "survey mode: randoms per data object (0: none)",
                                     low=0.0, high=1000.0)
+    target_line: str = setting("", "box mode with interlopers: the line the redshifts assume "
+                               "(name such as OIII5007 or rest wavelength in Angstrom)")
+    line_medium: str = setting("vacuum", "medium of rest wavelengths given as numbers",
+                               choices=("vacuum", "air"))
+    interlopers: tuple[dict[str, Any], ...] = setting(
+        (), "box mode: line-interloper populations, [[mock.interlopers]] tables with line, "
+        "fraction (share of the sample, in [0, 1)) and bias (at the line's true redshift)")
     format: str = setting("fits", "output file format", choices=("fits", "hdf5"))
     name: str = setting("mock", "file name prefix of the written catalogues")
 
@@ -113,6 +124,15 @@ class MockSettings:
             if len(self.observer) != 3:
                 raise ConfigError(f"mock: observer must be three numbers (x, y, z in Mpc/h); "
                                   f"got {list(self.observer)}")
+        if self.interlopers:
+            if self.geometry != "box":
+                raise ConfigError("mock: interlopers are made for box mocks only "
+                                  "(geometry = \"box\"); survey mocks with interlopers are not "
+                                  "implemented")
+            from corrpipe.cosmology import preset
+
+            populations_of(self.interlopers, self.target_line, self.redshift,
+                           preset(self.true_preset), self.line_medium)
         if self.n_mesh % 2:
             raise ConfigError(f"mock: n_mesh = {self.n_mesh} must be even (FFT layout)")
         k_nyquist = math.pi * self.n_mesh / self.box_size
@@ -123,3 +143,76 @@ class MockSettings:
                               f"{self.box_size:g} Mpc/h (cells of "
                               f"{self.box_size / self.n_mesh:.1f} Mpc/h, Nyquist "
                               f"{k_nyquist:.3f} h/Mpc < {MIN_NYQUIST_K}); use n_mesh >= {need}")
+
+
+_KEYS = ("line", "fraction", "bias")
+
+
+@dataclass(frozen=True)
+class InterloperPopulation:
+    """One interloper population of a mock.
+
+    Attributes
+    ----------
+    line : str
+        Its line (name or rest wavelength in Angstrom).
+    fraction : float
+        Its share of the final (mixed) sample, in [0, 1).
+    bias : float
+        Its linear bias at its true redshift.
+    """
+
+    line: str
+    fraction: float
+    bias: float
+
+
+def populations_of(entries, target_line: str, redshift: float, cosmology,
+                   medium: str = "vacuum", where: str = "mock.interlopers") -> tuple:
+    """Validate ``[[mock.interlopers]]`` tables into populations.
+
+    Raises
+    ------
+    ConfigError
+        Missing or unknown keys, a fraction outside [0, 1) or fractions summing to 1 or more,
+        a non-positive bias, an unknown line name, or a line that cannot be read as the target
+        line at the box redshift.
+    """
+    out = []
+    if entries and not target_line:
+        raise ConfigError(f"{where}: interloper populations need mock.target_line (the line "
+                          "the sample's redshifts assume, e.g. \"OIII5007\")")
+    for i, entry in enumerate(entries):
+        label = f"{where}[{i}]"
+        entry = dict(entry) if isinstance(entry, Mapping) else entry
+        if not isinstance(entry, dict):
+            raise ConfigError(f"{label}: expected a table {{line, fraction, bias}}, got "
+                              f"{entry!r}")
+        unknown = sorted(set(entry) - set(_KEYS))
+        missing = [k for k in _KEYS if k not in entry]
+        if unknown or missing:
+            raise ConfigError(f"{label}: keys must be {list(_KEYS)}; "
+                              + (f"unknown {unknown}" if unknown else f"missing {missing}"))
+        line = entry["line"]
+        try:
+            fraction = float(entry["fraction"])
+            bias = float(entry["bias"])
+        except (TypeError, ValueError):
+            raise ConfigError(f"{label}: fraction and bias must be numbers, got "
+                              f"{entry['fraction']!r}, {entry['bias']!r}") from None
+        if not (0.0 <= fraction < 1.0):
+            raise ConfigError(f"{label}: fraction = {fraction:g} must lie in [0, 1) (a share "
+                              "of the sample, e.g. 0.05)")
+        if not (bias > 0 and np.isfinite(bias)):
+            raise ConfigError(f"{label}: bias = {bias:g} must be a positive linear bias")
+        try:
+            rest_wavelength(str(line), medium)
+            line_mapping(cosmology, target_line, str(line), redshift, medium=medium)
+        except InputError as exc:
+            raise ConfigError(f"{label}: {exc}") from None
+        out.append(InterloperPopulation(str(line), fraction, bias))
+    total = sum(p.fraction for p in out)
+    if total >= 1.0:
+        raise ConfigError(f"{where}: the interloper fractions add up to {total:g}; they must "
+                          "sum to less than 1")
+    return tuple(out)
