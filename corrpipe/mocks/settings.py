@@ -100,6 +100,12 @@ class MockSettings:
     format: str = setting("fits", "output file format", choices=("fits", "hdf5"))
     name: str = setting("mock", "file name prefix of the written catalogues")
 
+    def __post_init__(self) -> None:
+        # TOML tables arrive as read-only mappings; keep plain dicts (copyable, JSON-ready)
+        object.__setattr__(self, "interlopers",
+                           tuple(dict(e) if isinstance(e, Mapping) else e
+                                 for e in self.interlopers))
+
     def validate(self) -> None:
         """Cross-field checks."""
         if self.geometry == "survey":

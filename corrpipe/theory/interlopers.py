@@ -39,7 +39,7 @@ from corrpipe.errors import InputError
 
 __all__ = ["REST_WAVELENGTHS", "LINE_ALIASES", "rest_wavelength", "air_to_vacuum",
            "vacuum_to_air", "assigned_redshift", "true_redshift", "LineMapping",
-           "line_mapping"]
+           "line_mapping", "Z_TRUE_MAX"]
 
 #: Vacuum rest wavelengths in Angstrom of common survey lines [from memory; standard atomic
 #: data, REFERENCES §15]. "OII" is the mean of the unresolved 3727.09 / 3729.88 doublet.
@@ -177,6 +177,11 @@ class LineMapping:
         return out
 
 
+#: Highest true redshift an interloper may have (the distance tables and growth solutions
+#: are made for z <= 10).
+Z_TRUE_MAX = 10.0
+
+
 def line_mapping(cosmology, target_line: Any, interloper_line: Any, z_assigned, *,
                  medium: str = "vacuum") -> LineMapping:
     """Assigned-to-true redshift and stretch factors of one interloper line.
@@ -200,8 +205,9 @@ def line_mapping(cosmology, target_line: Any, interloper_line: Any, z_assigned, 
     ------
     InputError
         Same line twice, or an assigned redshift that no interloper of this line can have
-        (a line bluer than the target lands only at z_assigned > lambda_i / lambda_t - 1;
-        below that its true redshift would be <= 0).
+        (a line redder than the target lands only at z_assigned > lambda_i / lambda_t - 1;
+        below that its true redshift would be <= 0; a much bluer line needs a true redshift
+        above :data:`Z_TRUE_MAX`).
     """
     lam_t = rest_wavelength(target_line, medium)
     lam_i = rest_wavelength(interloper_line, medium)
@@ -217,6 +223,12 @@ def line_mapping(cosmology, target_line: Any, interloper_line: Any, z_assigned, 
             f"({lam_t:g} A) cannot be assigned z = {np.min(z_a):g}: it would need a true "
             f"redshift {np.min(z_i):.4g} <= 0 (it lands only at z_assigned > {max(z_lowest, 0):.4g}); "
             "drop this line or restrict the target redshift range")
+    if np.any(z_i > Z_TRUE_MAX):
+        raise InputError(
+            f"interloper line {interloper_line!r} ({lam_i:g} A) read as {target_line!r} "
+            f"({lam_t:g} A) at z = {np.max(z_a):g} would sit at true redshift "
+            f"{np.max(z_i):.4g}, above {Z_TRUE_MAX:g} (no valid redshift in range); drop this "
+            "line or restrict the target redshift range")
     z_t = z_a
     dm_t = cosmology.transverse_distance(z_t)
     dm_i = cosmology.transverse_distance(z_i)

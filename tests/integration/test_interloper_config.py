@@ -1,0 +1,103 @@
+"""Interloper config glue: [[mock.interlopers]] tables, [fit] interloper keys, truth files and
+one-line errors (issue 17).
+
+References: common practice for the error contract (one line naming the key, the bad value
+and the fix); binomial statistics of the realised fractions (each object of the mixed box is
+an interloper with probability f; Poisson draws per population, common practice).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+
+from pathlib import Path
+
+import pytest
+
+import corrpipe
+from corrpipe.config import load_config, load_mock_config
+from corrpipe.errors import ConfigError
+from corrpipe.mocks import write_mocks
+
+MOCK = """[mock]
+kind = "lognormal"
+box_size = 200.0
+n_mesh = 64
+nbar = 1e-3
+bias = 1.8
+redshift = 1.2
+target_line = "{target}"
+format = "hdf5"
+
+[[mock.interlopers]]
+line = "{line}"
+fraction = {fraction}
+bias = 1.3
+"""
+
+
+def _mock(tmp_path, **kw):
+    values = dict(target="OIII5007", line="Ha", fraction=0.1)
+    values.update(kw)
+    path = tmp_path / "mock.toml"
+    path.write_text(MOCK.format(**values))
+    return path
+
+
+def test_mock_truth_records_the_fractions(tmp_path):
+    settings, _ = load_mock_config(_mock(tmp_path))
+    files = write_mocks(settings, tmp_path / "out", progress=False)
+    truth = json.loads(files[0].truth.read_text())["interlopers"]
+    assert truth["fractions_requested"] == [0.1]
+    n_target, n_int = truth["n_per_population"]
+    n = n_target + n_int
+    assert n == files[0].n_objects
+    # realised share within 4 binomial sigma of the request
+    assert abs(truth["fractions_realised"][0] - 0.1) < 4 * (0.1 * 0.9 / n) ** 0.5
+    assert abs(truth["mappings"][0]["gamma_perp"] - 1.537) < 1e-3
+
+
+@pytest.mark.parametrize("kw,match", [
+    (dict(fraction=1.2), r"fraction = 1.2 must lie in \[0, 1\)"),
+    (dict(fraction=-0.1), r"must lie in \[0, 1\)"),
+    (dict(line="Hdelta"), "unknown emission line 'Hdelta'"),
+    # Ly-alpha read as H-alpha at z = 1.2 would sit at z = 10.9: no valid redshift in range
+    (dict(target="Ha", line="Lya"), "no valid redshift in range"),
+    # H-alpha read as Ly-alpha at z = 1.2 would need a negative true redshift
+    (dict(target="Lya", line="Ha"), "cannot be assigned z = 1.2"),
+])
+def test_bad_mock_interlopers_are_one_line_errors(tmp_path, kw, match):
+    with pytest.raises(ConfigError, match=match) as info:
+        load_mock_config(_mock(tmp_path, **kw))
+    assert "\n" not in str(info.value) and "mock.interlopers[0]" in str(info.value)
+
+
+def test_survey_mocks_with_interlopers_are_refused(tmp_path):
+    path = _mock(tmp_path)
+    path.write_text(path.read_text().replace('format = "hdf5"',
+                                             'format = "hdf5"\ngeometry = "survey"'))
+    with pytest.raises(ConfigError, match="box mocks only"):
+        load_mock_config(path)
+
+
+def test_fit_interloper_keys_and_cli_error(tmp_path):
+    (tmp_path / "galaxies.csv").write_text("RA,DEC,Z\n10.0,1.0,1.2\n")
+    cfg = tmp_path / "run.toml"
+    good = ('[catalogue]\npath = "galaxies.csv"\n[fit]\ntarget_line = "OIII5007"\n'
+            'interloper_line = "Ha"\ninterloper_fraction = 0.03\n'
+            'interloper_fraction_width = 0.02\ninterloper_bias_width = 0.3\n')
+    cfg.write_text(good)
+    fit = load_config(cfg).analyses[0].fit
+    assert fit.interloper_term and fit.n_sampled_parameters == 6
+    cfg.write_text(good.replace("interloper_fraction = 0.03", "interloper_fraction = 1.0"))
+    proc = subprocess.run([sys.executable, "-c",
+                           "from corrpipe.cli import main; raise SystemExit(main())",
+                           "check", str(cfg)], capture_output=True, text=True, cwd=tmp_path,
+                          timeout=300, env=dict(os.environ, PYTHONPATH=str(
+                              Path(corrpipe.__file__).resolve().parents[1])))
+    lines = [line for line in proc.stderr.splitlines() if line.strip()]
+    assert proc.returncode == 2 and len(lines) == 1, proc.stderr
+    assert "interloper_fraction" in lines[0] and "Traceback" not in proc.stderr
