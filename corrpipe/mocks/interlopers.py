@@ -105,6 +105,8 @@ class MixedBox:
         Requested shares.
     mappings : tuple of dict
         Line mapping of each population.
+    target : BoxMock or None
+        The target population's box.
     """
 
     positions: np.ndarray
@@ -112,6 +114,7 @@ class MixedBox:
     fractions: tuple
     requested: tuple
     mappings: tuple
+    target: BoxMock | None = None
 
     def truth(self) -> dict:
         """JSON-ready record for the truth file."""
@@ -147,4 +150,5 @@ def mix_box(target: BoxMock, interlopers, requested, rsd: bool = True) -> MixedB
     fractions = tuple(float(np.sum(label == k)) / n_total for k in range(1, len(boxes)))
     return MixedBox(positions=np.concatenate(pos), population=label, fractions=fractions,
                     requested=tuple(float(f) for f in requested),
-                    mappings=tuple(b.meta.get("mapping", {}) for b in interlopers))
+                    mappings=tuple(b.meta.get("mapping", {}) for b in interlopers),
+                    target=target)
