@@ -31,7 +31,7 @@ effects), the mean chi^2, and the mean best-fit f. A PNG of the paired shifts is
 stays near the optimiser's start, so the "recovered f" of a flat prior says only that f is
 not measured.
 
-Typical run (about 15-25 min on 2 shared cores)::
+Typical run (20 mocks: about 10 min on 2 shared cores; 60 mocks: about 25 min)::
 
     python scripts/measure_interlopers.py --n-mocks 20 --out interloper_runs
 """
