@@ -108,6 +108,11 @@ class Likelihood:
         ``ells`` is ignored.
     progress : bool
         Show a bar while tabulating the template over damping scales (free damping only).
+    terms : sequence of model terms, optional
+        Extra model terms (e.g. :class:`corrpipe.fit.terms.InterloperTerm`): each brings
+        ``parameters`` (sampled, after the template's), ``defaults``, ``prepare(s, mu,
+        weights)`` and ``apply(template_vector, phys) -> model_vector``. Without terms the
+        model is the template alone, computed exactly as before.
 
     Notes
     -----
@@ -126,8 +131,9 @@ class Likelihood:
     def __init__(self, data_s, data_vector, covariance, ells: Sequence[int],
                  template: BAOTemplate, settings: FitSettings = FitSettings(), *,
                  precision_factor: float = 1.0, wedges: Sequence[float] | None = None,
-                 progress: bool = False) -> None:
+                 progress: bool = False, terms: Sequence = ()) -> None:
         self.settings = settings
+        self.terms = tuple(terms)
         self.template = template
         s = np.asarray(data_s, dtype=float)
         d = np.asarray(data_vector, dtype=float)
@@ -203,12 +209,16 @@ class Likelihood:
         self._grid0 = float(template.grid[0])
         self._step = template.s_step
         self._check_template_range()
+        for term in self.terms:
+            term.prepare(self.s, self._mu, self._weights)
 
         # Parameters.
         sig_par, sig_perp = settings.damping
         self._fixed = {"alpha_par": 1.0, "alpha_perp": 1.0, "B": 1.0, "beta": settings.beta,
                        "sigma_par": sig_par, "sigma_perp": sig_perp,
                        "sigma_s": settings.sigma_s}
+        for term in self.terms:
+            self._fixed.update(term.defaults)
         self._free_damping = settings.sigma_prior_width > 0
         if self._free_damping:
             w = settings.sigma_prior_width
@@ -245,9 +255,15 @@ class Likelihood:
     def best_amplitude(self, phys: dict) -> float:
         """B minimising chi^2 with the other physical parameters fixed (the model is linear
         in B); NaN if the template has no weight in the data."""
-        u = self.template_model(dict(phys, B=1.0))
+        if not self.terms:
+            u = self.template_model(dict(phys, B=1.0))
+            denom = float(u @ self._Q @ u)
+            return float(u @ self._Q @ self.data) / denom if denom > 0 else float("nan")
+        # with terms the model is c + B u (terms are affine in the template): solve for B
+        c = self.model(dict(phys, B=0.0))
+        u = self.model(dict(phys, B=1.0)) - c
         denom = float(u @ self._Q @ u)
-        return float(u @ self._Q @ self.data) / denom if denom > 0 else float("nan")
+        return float(u @ self._Q @ (self.data - c)) / denom if denom > 0 else float("nan")
 
     def _build_parameters(self) -> tuple[Parameter, ...]:
         st = self.settings
@@ -272,6 +288,8 @@ class Likelihood:
             for name, axis in zip(("sigma_par", "sigma_perp"), self._damping_axes):
                 out.append(Parameter(name, float(axis[0]), float(axis[-1]), self._fixed[name],
                                      st.sigma_prior_width))
+        for term in self.terms:
+            out.extend(term.parameters)
         return tuple(out)
 
     # ------------------------------------------------------------------ parameters
@@ -311,9 +329,16 @@ class Likelihood:
                                self._out)
         return self._out.ravel().copy()
 
+    def model(self, phys: dict) -> np.ndarray:
+        """Model vector without broadband: the template, then each term applied, n_data."""
+        out = self.template_model(phys)
+        for term in self.terms:
+            out = term.apply(out, phys)
+        return out
+
     def chi2(self, theta) -> float:
         """chi^2 of the data with the broadband marginalised (profiled), at ``theta``."""
-        r = self.data - self.template_model(self.physical(theta))
+        r = self.data - self.model(self.physical(theta))
         return float(r @ self._Q @ r)
 
     def log_prior(self, theta) -> float:
@@ -334,12 +359,12 @@ class Likelihood:
 
     def broadband(self, theta) -> np.ndarray:
         """Best-fit broadband coefficients a_{ell,p} at ``theta``, shape (n_ell, n_powers)."""
-        r = self.data - self.template_model(self.physical(theta))
+        r = self.data - self.model(self.physical(theta))
         return (self._bb_solve @ r).reshape(len(self.ells), -1)
 
     def full_model(self, theta) -> np.ndarray:
-        """Template plus best-fit broadband at ``theta``, length n_data."""
-        t = self.template_model(self.physical(theta))
+        """Model (template and terms) plus best-fit broadband at ``theta``, length n_data."""
+        t = self.model(self.physical(theta))
         return t + self.design @ (self._bb_solve @ (self.data - t))
 
     @property

@@ -249,6 +249,14 @@ class FitResult:
         if det:
             lines.append(f"  BAO detection: Delta chi2 = {det['delta_chi2']:.1f} against a "
                          f"no-BAO template ({det['significance_sigma']:.1f} sigma)")
+        inter = self.diagnostics.get("interlopers")
+        if inter and "interloper_fraction" in self.summary:
+            f = self.summary["interloper_fraction"]
+            sh = inter["shift"]
+            lines.append(f"  interloper fraction = {f['median']:.4f} +{f['error_plus']:.4f} "
+                         f"-{f['error_minus']:.4f}; the term moves alpha_par by "
+                         f"{sh['alpha_par']:+.4f} and alpha_perp by {sh['alpha_perp']:+.4f} "
+                         "(best fits with and without it)")
         for k, v in self.diagnostics.get("prior_edges", {}).items():
             if v["prior_limited"]:
                 lo, hi = v["prior"]

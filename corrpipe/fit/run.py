@@ -15,12 +15,13 @@ from corrpipe.fit.likelihood import Likelihood
 from corrpipe.fit.result import FitResult, dilations_from_samples, summarise_samples
 from corrpipe.fit.sampler import run_chain
 from corrpipe.fit.settings import FitSettings
+from corrpipe.fit.terms import FRACTION, InterloperTerm, interloper_term_from_settings
 from corrpipe.theory.damping import zeldovich_damping
 from corrpipe.theory.linear_power import LinearPower
 from corrpipe.theory.template import BAOTemplate
 
 __all__ = ["fit_multipoles", "build_linear_power", "build_likelihood", "best_fit",
-           "bao_detection", "prior_edges", "resolve_damping",
+           "bao_detection", "prior_edges", "resolve_damping", "interloper_shift",
            "alpha_profile"]
 
 _PENALTY = 1e30
@@ -62,8 +63,11 @@ def build_likelihood(s, data_vector, covariance, ells: Sequence[int], *, cosmolo
                                                                           settings)
     settings = resolve_damping(settings, lp, cosmology, z_eff)
     template = BAOTemplate.from_settings(lp, settings)
+    terms = []
+    if settings.interloper_term:
+        terms.append(interloper_term_from_settings(settings, cosmology, z_eff, lp))
     return Likelihood(s, data_vector, covariance, ells, template, settings,
-                      precision_factor=precision_factor, progress=progress)
+                      precision_factor=precision_factor, progress=progress, terms=terms)
 
 
 def _objective(like: Likelihood):
@@ -225,12 +229,44 @@ def bao_detection(like: Likelihood, best: np.ndarray) -> dict:
     wedges = like.wedges
     plain = Likelihood(like.s, like.data, like.covariance,
                        like.ells if wedges is None else (), template, settings,
-                       precision_factor=like.precision_factor, wedges=wedges)
+                       precision_factor=like.precision_factor, wedges=wedges, terms=like.terms)
     chi2_bao = like.chi2(best)
     chi2_none = plain.chi2(best_fit(plain))
     delta = chi2_none - chi2_bao
     return {"chi2_bao": float(chi2_bao), "chi2_no_bao": float(chi2_none),
             "delta_chi2": float(delta), "significance_sigma": float(np.sqrt(max(delta, 0.0)))}
+
+
+def interloper_shift(like: Likelihood, best: np.ndarray) -> dict:
+    """What the interloper term does to the fit: the same fit without it, best fit to best fit.
+
+    Returns
+    -------
+    dict
+        The term's mapping (:meth:`InterloperTerm.describe`), the best-fit fraction,
+        ``best_fit`` (dilations with the term) and ``best_fit_without_term``, the
+        ``shift`` of each dilation (with minus without), and both chi^2 values.
+    """
+    term = next(t for t in like.terms if isinstance(t, InterloperTerm))
+    rest = tuple(t for t in like.terms if t is not term)
+    wedges = like.wedges
+    plain = Likelihood(like.s, like.data, like.covariance, like.ells if wedges is None else (),
+                       like.template, dataclasses.replace(
+                           like.settings, target_line="", interloper_line="",
+                           s_min=float(like.s[0]), s_max=float(like.s[-1])),
+                       precision_factor=like.precision_factor, wedges=wedges, terms=rest)
+    best_plain = best_fit(plain)
+
+    def dilations(lk, theta):
+        p = lk.physical(theta)
+        return {"alpha_par": p["alpha_par"], "alpha_perp": p["alpha_perp"],
+                "alpha": float(np.cbrt(p["alpha_par"] * p["alpha_perp"] ** 2))}
+
+    with_term, without = dilations(like, best), dilations(plain, best_plain)
+    return {"mapping": term.describe(), "fraction_best_fit": like.physical(best)[FRACTION],
+            "best_fit": with_term, "best_fit_without_term": without,
+            "shift": {k: with_term[k] - without[k] for k in with_term},
+            "chi2": like.chi2(best), "chi2_without_term": plain.chi2(best_plain)}
 
 
 def prior_edges(like: Likelihood, samples: np.ndarray, edge_fraction: float = 0.05,
@@ -345,6 +381,8 @@ def fit_multipoles(s, data_vector, covariance, ells: Sequence[int], *, cosmology
                        name=name)
     result.diagnostics = {"bao_detection": bao_detection(like, ml),
                           "prior_edges": prior_edges(like, chain.samples())}
+    if like.terms:
+        result.diagnostics["interlopers"] = interloper_shift(like, ml)
     return result
 
 

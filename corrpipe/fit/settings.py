@@ -106,6 +106,39 @@ class FitSettings:
                                     "transform", unit="Mpc/h", low=0.0, high=5.0)
     n_mu: int = setting(16, "Gauss-Legendre nodes in mu for the dilation projection", low=4,
                         high=64)
+    # --- line interlopers (an optional model term; see corrpipe.fit.terms)
+    target_line: str = setting("", "interloper term: the line the sample's redshifts were "
+                               "assigned from, a name (Lya, OII, Hb, OIII4959, OIII5007, Ha) "
+                               "or a rest wavelength in Angstrom (empty: no interloper term)", neutral_default=True)
+    interloper_line: str = setting("", "interloper term: the line mistaken for the target line "
+                                   "(name or rest wavelength in Angstrom)", neutral_default=True)
+    line_medium: str = setting("vacuum", "medium of rest wavelengths given as numbers (named "
+                               "lines are vacuum values)", choices=("vacuum", "air"), neutral_default=True)
+    interloper_fraction: float = setting(0.0, "interloper fraction f: Gaussian prior centre, "
+                                         "or the starting point of a flat prior", low=0.0,
+                                         high=1.0, high_open=True, neutral_default=True)
+    interloper_fraction_width: float = setting(0.0, "Gaussian prior width on f (0: flat on "
+                                               "[0, interloper_fraction_max])", low=0.0,
+                                               high=1.0, neutral_default=True)
+    interloper_fraction_max: float = setting(0.5, "upper edge of the prior on f", low=0.0,
+                                             high=1.0, low_open=True, high_open=True, neutral_default=True)
+    interloper_bias: float = setting(1.5, "linear bias of the interloper population at its true "
+                                     "redshift (prior centre)", low=0.0, high=10.0,
+                                     low_open=True, neutral_default=True)
+    interloper_bias_width: float = setting(0.0, "Gaussian prior width on the interloper bias "
+                                           "(0: fixed)", low=0.0, high=10.0, neutral_default=True)
+    interloper_sigma_par: float | None = setting(None, "BAO damping of the interloper "
+                                                 "population along its line of sight (empty: "
+                                                 "sigma_par scaled by the growth factor "
+                                                 "ratio)", unit="Mpc/h", low=0.0, high=30.0, neutral_default=True)
+    interloper_sigma_perp: float | None = setting(None, "BAO damping of the interloper "
+                                                  "population across its line of sight "
+                                                  "(empty: sigma_perp scaled the same way)",
+                                                  unit="Mpc/h", low=0.0, high=30.0, neutral_default=True)
+    interloper_growth_rate: float | None = setting(None, "growth rate f of the interloper "
+                                                   "population (empty: the fiducial "
+                                                   "cosmology's at its true redshift)",
+                                                   low=0.0, high=3.0, neutral_default=True)
     # --- sampling
     n_walkers: int = setting(32, "emcee walkers", low=4, high=1024)
     max_steps: int = setting(20000, "cap on steps per walker", low=10, high=10_000_000)
@@ -148,6 +181,28 @@ class FitSettings:
         if len(set(self.broadband_powers)) != len(self.broadband_powers):
             raise ConfigError(f"fit: broadband_powers = {list(self.broadband_powers)} repeats "
                               "a power")
+        if bool(self.target_line) != bool(self.interloper_line):
+            given, missing = (("target_line", "interloper_line") if self.target_line else
+                              ("interloper_line", "target_line"))
+            raise ConfigError(f"fit: {given} is set but {missing} is empty; the interloper "
+                              "term needs both lines (or neither, for no term)")
+        if self.interloper_term:
+            from corrpipe.errors import InputError
+            from corrpipe.theory.interlopers import rest_wavelength
+
+            for key in ("target_line", "interloper_line"):
+                try:
+                    rest_wavelength(getattr(self, key), self.line_medium)
+                except InputError as exc:
+                    raise ConfigError(f"fit: {key}: {exc}") from None
+            if self.interloper_fraction >= self.interloper_fraction_max:
+                raise ConfigError(f"fit: interloper_fraction = {self.interloper_fraction} must "
+                                  f"be below interloper_fraction_max = "
+                                  f"{self.interloper_fraction_max}")
+            if self.reconstructed:
+                raise ConfigError("fit: the interloper term models data before "
+                                  "reconstruction; fit reconstructed data without it (remove "
+                                  "target_line and interloper_line)")
         if self.power_spectrum == "file" and not self.power_file:
             raise ConfigError("fit: power_spectrum = 'file' needs power_file (two columns: "
                               "k [h/Mpc], P [(Mpc/h)^3])")
@@ -157,6 +212,11 @@ class FitSettings:
     def recon_convention_resolved(self) -> str:
         """RSD convention actually used: 'keep-rsd' unless the data were reconstructed."""
         return self.recon_convention if self.reconstructed else "keep-rsd"
+
+    @property
+    def interloper_term(self) -> bool:
+        """Whether the model has the line-interloper term (both lines given)."""
+        return bool(self.target_line and self.interloper_line)
 
     @property
     def fit_ells(self) -> tuple[int, ...]:
@@ -173,6 +233,8 @@ class FitSettings:
             n += 1
         if self.sigma_prior_width > 0:
             n += 2
+        if self.interloper_term:
+            n += 1 + (self.interloper_bias_width > 0)
         return n
 
     @property

@@ -6,6 +6,8 @@ Public entry points (see the submodules for details):
 * :func:`carve_survey` -> :class:`SurveyMock`; :func:`survey_randoms`; file writers
 * :func:`expected_dilation` -> :class:`Dilation`
 * :class:`MockSettings` (the ``[mock]`` config table) and :func:`write_mocks`
+* :func:`interloper_box`, :func:`mix_box`, :func:`make_interloper_mix`: line-interloper
+  populations of box mocks
 """
 
 from corrpipe.mocks.box import (BoxMock, clipped_bias_moments, clipped_linear_bias,
@@ -13,10 +15,11 @@ from corrpipe.mocks.box import (BoxMock, clipped_bias_moments, clipped_linear_bi
                                 lagrangian_bias_for, linear_density, lognormal_box,
                                 zeldovich_box)
 from corrpipe.mocks.dilation import Dilation, expected_dilation
+from corrpipe.mocks.interlopers import MixedBox, interloper_box, mix_box
 from corrpipe.mocks.make import (MockFiles, effective_redshift, footprint_of, make_box_mock,
-                                 make_survey_mock, mock_power, nz_of, true_cosmology,
-                                 write_mocks, zeldovich_expectation)
-from corrpipe.mocks.settings import MockSettings
+                                 make_interloper_mix, make_survey_mock, mock_power, nz_of,
+                                 true_cosmology, write_mocks, zeldovich_expectation)
+from corrpipe.mocks.settings import InterloperPopulation, MockSettings
 from corrpipe.mocks.survey import (SurveyMock, carve_survey, shell_volume_fraction_outside,
                                    survey_randoms, tabulated_nz, write_box_catalogue,
                                    write_sky_catalogue)
@@ -29,5 +32,6 @@ __all__ = [
     "shell_volume_fraction_outside", "write_sky_catalogue", "write_box_catalogue",
     "MockSettings", "MockFiles", "write_mocks", "make_box_mock", "make_survey_mock",
     "true_cosmology", "mock_power", "zeldovich_expectation", "footprint_of", "nz_of",
-    "effective_redshift",
+    "effective_redshift", "interloper_box", "mix_box", "MixedBox", "make_interloper_mix",
+    "InterloperPopulation",
 ]

@@ -6,7 +6,7 @@ import dataclasses
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Mapping
 
 import numpy as np
 
@@ -18,6 +18,7 @@ from corrpipe.mocks.survey import (SurveyMock, carve_survey, survey_randoms, tab
                                    write_box_catalogue, write_sky_catalogue)
 
 __all__ = ["MockFiles", "true_cosmology", "mock_power", "make_box_mock", "make_survey_mock",
+           "make_interloper_mix", "make_survey_interloper_mix",
            "footprint_of", "nz_of", "write_mocks", "effective_redshift"]
 
 _LOS = {"x": 0, "y": 1, "z": 2}
@@ -89,6 +90,149 @@ def make_box_mock(settings: MockSettings, seed: int, *, cosmology=None, power=No
     if settings.kind == "lognormal":
         return lognormal_box(*args, **common)
     return zeldovich_box(*args, bias_smoothing=settings.bias_smoothing, **common)
+
+
+def make_interloper_mix(settings: MockSettings, seed: int, *, cosmology=None, power=None,
+                        progress: bool = True):
+    """Target box at density (1 - sum f) nbar plus each ``[[mock.interlopers]]`` population,
+    drawn at its true redshift and moved to the assigned frame (:mod:`corrpipe.mocks.interlopers`).
+
+    Population k is drawn with seed ``[seed, 100 + k]``; the target with the plain ``seed``
+    and a reduced density (so its field is the one :func:`make_box_mock` draws).
+    """
+    from corrpipe.mocks.interlopers import interloper_box, mix_box, populations_of
+    from corrpipe.theory.linear_power import LinearPower
+
+    cosmology = true_cosmology(settings) if cosmology is None else cosmology
+    pops = populations_of(settings.interlopers, settings.target_line, settings.redshift,
+                          cosmology, settings.line_medium)
+    keep = 1.0 - sum(p.max_fraction for p in pops)
+    target = make_box_mock(dataclasses.replace(settings, nbar=settings.nbar * keep,
+                                               interlopers=()), seed,
+                           cosmology=cosmology, power=power, progress=progress)
+    from corrpipe.theory.interlopers import line_mapping
+
+    dtype = np.float32 if settings.precision == "float32" else np.float64
+    boxes = []
+    for k, pop in enumerate(pops, start=1):
+        mapping = line_mapping(cosmology, settings.target_line, pop.line, settings.redshift,
+                               medium=settings.line_medium)
+        z_true = float(mapping.z_true)
+        p_true = LinearPower.eisenstein_hu(cosmology, z=z_true)
+        growth = float(np.asarray(cosmology.growth_rate(z_true))) if settings.rsd else 0.0
+        extra = {"bias_smoothing": settings.bias_smoothing} if settings.kind == "zeldovich" else {}
+        boxes.append(interloper_box(p_true, mapping, settings.box_size, settings.n_mesh,
+                                    settings.nbar * pop.max_fraction, pop.bias, growth,
+                                    np.random.default_rng([seed, 100 + k]), kind=settings.kind,
+                                    alpha_par=settings.alpha_par,
+                                    alpha_perp=settings.alpha_perp,
+                                    los_axis=_LOS[settings.los_axis], dtype=dtype,
+                                    progress=progress, **extra))
+    return mix_box(target, boxes, [p.max_fraction for p in pops], rsd=settings.rsd)
+
+
+def _interloper_settings(settings: MockSettings, pop, z_true: float, nbar: float):
+    """The [mock] table of one interloper population's own box (its redshift, bias, density)."""
+    return dataclasses.replace(settings, interlopers=(), redshift=z_true, bias=pop.bias,
+                               nbar=nbar, growth_rate=None, power_file=None)
+
+
+def make_survey_interloper_mix(settings: MockSettings, seed: int, *, cosmology=None,
+                               power=None, progress: bool = True):
+    """Survey mock with ``[[mock.interlopers]]`` populations at their assigned redshifts.
+
+    The target is carved with n(z) (1 - sum_k f_k(z)); population k is drawn in its own box
+    at the true redshift of the box redshift (its P(k), bias and growth rate; seed
+    ``[seed, 100 + k]``), carved over the true redshifts that map onto z_min..z_max with the
+    density f_k(z_a) n(z_a) gamma_perp^2 gamma_par at z_a = its assigned redshift (number
+    conservation: the mapping stretches volumes by gamma_perp^2 gamma_par), with its own
+    radial RSD, and then given z_a from its observed redshift. Angles are kept.
+
+    Returns
+    -------
+    (SurveyMock, ndarray of int8, dict)
+        The mixed catalogue (``z`` assigned, ``z_cosmo`` true cosmological), the population
+        label of each object (0 target), and the truth record (requested fraction nodes,
+        realised fractions in five assigned-redshift bins, the mapping at the box redshift).
+    """
+    from corrpipe.mocks.interlopers import populations_of
+    from corrpipe.theory.interlopers import (assigned_redshift, line_mapping, rest_wavelength,
+                                             true_redshift)
+    cosmology = true_cosmology(settings) if cosmology is None else cosmology
+    z_lo, z_hi = settings.z_min, settings.z_max
+    pops = populations_of(settings.interlopers, settings.target_line,
+                          (z_lo, z_hi, settings.redshift), cosmology, settings.line_medium)
+    base_nz = nz_of(settings)
+    if base_nz is None:
+        def base_nz(z):
+            return np.full(np.shape(z), settings.nbar)
+
+    def target_nz(z):
+        return base_nz(z) * (1.0 - np.sum([p.fraction_at(z) for p in pops], axis=0))
+
+    footprint = footprint_of(settings)
+    plain = dataclasses.replace(settings, interlopers=())
+    box = make_box_mock(plain, seed, cosmology=cosmology, power=power, progress=progress)
+    common = dict(observer=settings.observer, rsd=settings.rsd, replicate=settings.replicate)
+    parts = [carve_survey(box, cosmology, footprint, z_lo, z_hi, nz=target_nz,
+                          seed=np.random.default_rng([seed, 1]), **common)]
+    del box
+    lam_t = rest_wavelength(settings.target_line, settings.line_medium)
+    mappings = []
+    for k, pop in enumerate(pops, start=1):
+        lam_i = rest_wavelength(pop.line, settings.line_medium)
+        zi_lo, zi_hi = (float(v) for v in true_redshift([z_lo, z_hi], lam_i, lam_t))
+
+        def nz_i(z_true, pop=pop, lam_i=lam_i):
+            z_a = np.clip(assigned_redshift(z_true, lam_i, lam_t), z_lo, z_hi)
+            m = line_mapping(cosmology, settings.target_line, pop.line, z_a,
+                             medium=settings.line_medium)
+            return pop.fraction_at(z_a) * base_nz(z_a) * m.gamma_perp**2 * m.gamma_par
+
+        peak = float(np.max(nz_i(np.linspace(zi_lo, zi_hi, 512))))
+        z_box = float(true_redshift(settings.redshift, lam_i, lam_t))
+        mappings.append(line_mapping(cosmology, settings.target_line, pop.line,
+                                     settings.redshift, medium=settings.line_medium).as_dict())
+        if peak <= 0:
+            continue
+        own = _interloper_settings(settings, pop, z_box, 1.02 * peak)
+        p_true = mock_power(own, cosmology)
+        if settings.power_file:  # the table is the target's: scale it to the true redshift
+            tab = mock_power(settings, cosmology)
+            ratio = float(cosmology.growth_factor(z_box) / cosmology.growth_factor(
+                settings.redshift)) ** 2
+            p_true = dataclasses.replace(tab, power=tab.power * ratio,
+                                         power_nowiggle=tab.power_nowiggle * ratio, z=z_box)
+        ibox = make_box_mock(own, np.random.default_rng([seed, 100 + k]), cosmology=cosmology,
+                             power=p_true, progress=progress)
+        sky = carve_survey(ibox, cosmology, footprint, zi_lo, zi_hi, nz=nz_i,
+                           seed=np.random.default_rng([seed, 200 + k]), **common)
+        z_a = assigned_redshift(sky.z, lam_i, lam_t)
+        keep = (z_a >= z_lo) & (z_a < z_hi)
+        parts.append(dataclasses.replace(sky, ra=sky.ra[keep], dec=sky.dec[keep], z=z_a[keep],
+                                         z_cosmo=sky.z_cosmo[keep],
+                                         weights=sky.weights[keep]))
+        parts[-1].meta["population"] = k
+    labels = np.concatenate([np.full(len(p), p.meta.get("population", 0), dtype=np.int8)
+                             for p in parts])
+    mixed = SurveyMock(ra=np.concatenate([p.ra for p in parts]),
+                       dec=np.concatenate([p.dec for p in parts]),
+                       z=np.concatenate([p.z for p in parts]),
+                       z_cosmo=np.concatenate([p.z_cosmo for p in parts]),
+                       weights=np.concatenate([p.weights for p in parts]),
+                       meta=dict(parts[0].meta))
+    edges = np.linspace(z_lo, z_hi, 6)
+    idx = np.clip(np.digitize(mixed.z, edges) - 1, 0, 4)
+    n_bin = np.bincount(idx, minlength=5)
+    realised = [(np.bincount(idx[labels == k], minlength=5) / np.maximum(n_bin, 1)).tolist()
+                for k in range(1, len(pops) + 1)]
+    truth = {"fraction_nodes": [{"line": p.line, "fraction": list(p.fraction),
+                                 "fraction_z": list(p.fraction_z)} for p in pops],
+             "z_bin_edges": edges.tolist(), "n_per_bin": n_bin.tolist(),
+             "fractions_realised": realised,
+             "n_per_population": np.bincount(labels, minlength=len(pops) + 1).tolist(),
+             "mappings": mappings}
+    return mixed, labels, truth
 
 
 def zeldovich_expectation(settings: MockSettings, s, ells, *, alpha_par: float = 1.0,
@@ -233,8 +377,15 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
                      "nbar": settings.nbar, "box_redshift": settings.redshift}
         randoms_path = None
         if settings.geometry == "box":
-            box = make_box_mock(settings, seed, cosmology=cosmo, power=power, progress=progress)
-            pos = box.redshift_space_positions() if settings.rsd else box.positions
+            mixed = None
+            if settings.interlopers:
+                mixed = make_interloper_mix(settings, seed, cosmology=cosmo, power=power,
+                                            progress=progress)
+                box, pos = mixed.target, mixed.positions
+            else:
+                box = make_box_mock(settings, seed, cosmology=cosmo, power=power,
+                                    progress=progress)
+                pos = box.redshift_space_positions() if settings.rsd else box.positions
             z_eff = settings.redshift if settings.redshift > 0 else 1e-3
             dil = Dilation(alpha_par=settings.alpha_par, alpha_perp=settings.alpha_perp,
                            alpha_iso=settings.alpha_par ** (1 / 3) * settings.alpha_perp ** (2 / 3),
@@ -244,10 +395,15 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
                         growth_rate=box.growth_rate)
             data_path = write_box_catalogue(out / (stem + ext), pos, meta=meta,
                                             overwrite=overwrite)
-            n_obj = len(box)
+            n_obj = len(box) if mixed is None else len(pos)
         else:
-            sky = make_survey_mock(settings, seed, cosmology=cosmo, power=power,
-                                   progress=progress)
+            labels = interloper_truth = None
+            if settings.interlopers:
+                sky, labels, interloper_truth = make_survey_interloper_mix(
+                    settings, seed, cosmology=cosmo, power=power, progress=progress)
+            else:
+                sky = make_survey_mock(settings, seed, cosmology=cosmo, power=power,
+                                       progress=progress)
             if len(sky) == 0:
                 raise InputError("the carved survey is empty: check footprint, redshift range "
                                  "and observer against the box")
@@ -258,7 +414,9 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
                         alpha_iso=dil.alpha_iso)
             data_path = write_sky_catalogue(out / (stem + ext), sky.ra, sky.dec, sky.z,
                                             sky.weights, meta=meta, overwrite=overwrite,
-                                            extra={"Z_COSMO": sky.z_cosmo})
+                                            extra={"Z_COSMO": sky.z_cosmo} if labels is None
+                                            else {"Z_COSMO": sky.z_cosmo,
+                                                  "POPULATION": labels})
             n_obj = len(sky)
             if settings.randoms_factor > 0:
                 n_r = int(round(settings.randoms_factor * len(sky)))
@@ -272,6 +430,10 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
                  "n_objects": n_obj, "dilation": dil.as_dict(),
                  "true_cosmology": _jsonable(dataclasses.asdict(cosmo)),
                  "fiducial_cosmology": _jsonable(dataclasses.asdict(fid))}
+        if settings.geometry == "box" and mixed is not None:
+            truth["interlopers"] = mixed.truth()
+        elif settings.geometry == "survey" and interloper_truth is not None:
+            truth["interlopers"] = interloper_truth
         truth_path = out / (stem + "_truth.json")
         tmp = truth_path.with_suffix(".json.part")
         tmp.write_text(json.dumps(truth, indent=2))
@@ -285,7 +447,7 @@ def write_mocks(settings: MockSettings, output_dir, *, fiducial=None, progress: 
 
 
 def _jsonable(obj):
-    if isinstance(obj, dict):
+    if isinstance(obj, Mapping):
         return {k: _jsonable(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
         return [_jsonable(v) for v in obj]
