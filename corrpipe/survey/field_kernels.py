@@ -1,0 +1,165 @@
+"""numba loops behind :mod:`corrpipe.survey.fields`: the sky grid of field candidates and the
+exact point-in-field test.
+
+The sky is cut into declination bands of height ``band`` (radians); band ``b`` holds
+``n_ra[b]`` equal cells in RA. A cell is named by the key ``b * key_stride + j``. Every field
+is registered in each cell its bounding cap touches; a direction is then tested exactly only
+against the fields registered in its own cell. Fields are registered in table order, so the
+first match in a cell's list is the covering field listed first.
+
+Shapes (``shape`` codes): 0 = circle (cap of angular radius ``r``), 1 = rectangle (the region
+whose gnomonic projection about the centre is the rectangle ``|x| <= a``, ``|y| <= b`` in the
+rotated tangent axes ``u1``, ``u2``, i.e. four great-circle edges).
+
+Kernel module (flat ``@njit(cache=True)`` functions over arrays and numbers).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+__all__ = ["all_owners_count", "cell_keys", "count_cells", "fill_cells", "first_owner"]
+
+EDGE_TOLERANCE = 4e-15
+"""Closed field edges: a direction within this many radians (~1e-9 arcsec, a few times the
+rounding of a unit vector) outside an edge counts as inside."""
+
+
+@njit(cache=True)
+def _band_of(dec, band, n_bands):
+    b = int(np.floor((dec + 0.5 * np.pi) / band))
+    b = max(b, 0)
+    if b >= n_bands:
+        b = n_bands - 1
+    return b
+
+
+@njit(cache=True)
+def _cells_of_field(ra, dec, radius, band, n_ra, n_bands, out_b, out_j):
+    """Cells touched by the cap (ra, dec, radius); returns how many were written."""
+    lo = _band_of(dec - radius - 1e-9, band, n_bands)
+    hi = _band_of(dec + radius + 1e-9, band, n_bands)
+    full = abs(dec) + radius >= 0.5 * np.pi - 1e-9
+    half = 0.0
+    if not full:
+        s = np.sin(radius) / np.cos(dec)
+        if s >= 1.0:
+            full = True
+        else:
+            # RA half-extent of a cap (spherical trigonometry, common practice)
+            half = np.arcsin(s) * (1.0 + 1e-9) + 1e-12
+    n = 0
+    for b in range(lo, hi + 1):
+        m = n_ra[b]
+        width = 2.0 * np.pi / m
+        if full or 2.0 * half >= 2.0 * np.pi - width:
+            for j in range(m):
+                if out_b is not None:
+                    out_b[n] = b
+                    out_j[n] = j
+                n += 1
+            continue
+        j0 = int(np.floor((ra - half) / width))
+        j1 = int(np.floor((ra + half) / width))
+        for jj in range(j0, j1 + 1):
+            if out_b is not None:
+                out_b[n] = b
+                out_j[n] = jj % m
+            n += 1
+    return n
+
+
+@njit(cache=True)
+def count_cells(ra, dec, radius, band, n_ra):
+    """Number of (field, cell) registrations of each field (angles in radians)."""
+    n_bands = n_ra.size
+    out = np.empty(ra.size, dtype=np.int64)
+    for i in range(ra.size):
+        out[i] = _cells_of_field(ra[i], dec[i], radius[i], band, n_ra, n_bands, None, None)
+    return out
+
+
+@njit(cache=True)
+def fill_cells(ra, dec, radius, band, n_ra, key_stride, starts, keys, fields):
+    """Write the cell key and field index of every registration (``starts``: CSR offsets)."""
+    n_bands = n_ra.size
+    buf_b = np.empty(4 * n_ra.max() + 16, dtype=np.int64)
+    buf_j = np.empty_like(buf_b)
+    for i in range(ra.size):
+        need = starts[i + 1] - starts[i]
+        if need > buf_b.size:
+            buf_b = np.empty(need, dtype=np.int64)
+            buf_j = np.empty(need, dtype=np.int64)
+        n = _cells_of_field(ra[i], dec[i], radius[i], band, n_ra, n_bands, buf_b, buf_j)
+        for k in range(n):
+            keys[starts[i] + k] = buf_b[k] * key_stride + buf_j[k]
+            fields[starts[i] + k] = i
+
+
+@njit(cache=True)
+def cell_keys(ra, dec, band, n_ra, key_stride):
+    """Cell key of each direction (radians)."""
+    n_bands = n_ra.size
+    out = np.empty(ra.size, dtype=np.int64)
+    for i in range(ra.size):
+        b = _band_of(dec[i], band, n_bands)
+        m = n_ra[b]
+        j = int(np.floor((ra[i] % (2.0 * np.pi)) / (2.0 * np.pi / m)))
+        if j >= m:
+            j = m - 1
+        out[i] = b * key_stride + j
+    return out
+
+
+@njit(cache=True)
+def _inside(px, py, pz, f, shape, centre, axis1, axis2, size1, size2):
+    cx, cy, cz = centre[f, 0], centre[f, 1], centre[f, 2]
+    if shape[f] == 0:
+        # chord length |p - c| against the chord of the radius, 2 sin(r/2) (stable for small r)
+        dx, dy, dz = px - cx, py - cy, pz - cz
+        chord = np.sqrt(dx * dx + dy * dy + dz * dz)
+        return chord <= size1[f] + EDGE_TOLERANCE
+    zc = px * cx + py * cy + pz * cz
+    if zc <= 0.0:
+        return False
+    x = px * axis1[f, 0] + py * axis1[f, 1] + pz * axis1[f, 2]
+    if abs(x) > size1[f] * zc + EDGE_TOLERANCE:
+        return False
+    y = px * axis2[f, 0] + py * axis2[f, 1] + pz * axis2[f, 2]
+    return abs(y) <= size2[f] * zc + EDGE_TOLERANCE
+
+
+@njit(cache=True)
+def first_owner(vec, cell_start, cell_stop, cell_fields, shape, centre, axis1, axis2,
+                size1, size2):
+    """Index of the first field (table order) containing each direction, -1 if none.
+
+    ``cell_start[i]``/``cell_stop[i]`` bound the candidate
+    list of the i-th point in ``cell_fields`` (empty when its cell holds no field). ``size1``
+    is the chord of the radius for circles and ``tan(side/2)`` for rectangles.
+    """
+    n = vec.shape[0]
+    out = np.full(n, -1, dtype=np.int64)
+    for i in range(n):
+        px, py, pz = vec[i, 0], vec[i, 1], vec[i, 2]
+        for k in range(cell_start[i], cell_stop[i]):
+            f = cell_fields[k]
+            if _inside(px, py, pz, f, shape, centre, axis1, axis2, size1, size2):
+                out[i] = f
+                break
+    return out
+
+
+@njit(cache=True)
+def all_owners_count(vec, cell_start, cell_stop, cell_fields, shape, centre, axis1, axis2,
+                     size1, size2):
+    """Number of fields containing each direction (overlaps counted)."""
+    n = vec.shape[0]
+    out = np.zeros(n, dtype=np.int64)
+    for i in range(n):
+        px, py, pz = vec[i, 0], vec[i, 1], vec[i, 2]
+        for k in range(cell_start[i], cell_stop[i]):
+            if _inside(px, py, pz, cell_fields[k], shape, centre, axis1, axis2, size1, size2):
+                out[i] += 1
+    return out

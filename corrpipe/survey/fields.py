@@ -1,0 +1,448 @@
+"""Footprints made of many small fields: squares, rectangles and circles on the sky.
+
+A :class:`FieldFootprint` holds a table of fields (centre, shape, size, position angle,
+completeness, depth class) and answers the :class:`~corrpipe.survey.footprint.Footprint`
+questions exactly at the field edges: containment uses each field's own geometry (angular
+distance for circles, great-circle edges for rectangles); a coarse sky grid
+(:mod:`corrpipe.survey.field_kernels`) only narrows the fields a direction is tested against.
+
+Geometry
+--------
+* A circle of radius r is the spherical cap of angular radius r about the centre.
+* A rectangle with sides (s_a, s_b) and position angle PA is the region whose gnomonic
+  (tangent-plane) projection about its centre is the rectangle |x| <= tan(s_a/2),
+  |y| <= tan(s_b/2), where x runs along PA (measured from north through east, common
+  practice) and y perpendicular to it: four great-circle edges, and the angular distance from
+  the centre to the middle of each edge is half the side. A square is s_a = s_b.
+
+Overlaps and vetoes
+-------------------
+Fields may overlap; a direction covered by several belongs to the one listed first (its
+completeness and depth class apply), so overlaps are counted once. Vetoes (bright-star holes
+and the like) are another field table whose fields are removed. The area of a field that no
+other field or veto touches is exact; for a touched field the part it owns is measured by
+sampling it (``overlap_samples`` points, stated error in :meth:`FieldFootprint.area_error_sr`).
+"""
+
+from __future__ import annotations
+
+import functools
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from corrpipe.errors import InputError
+from corrpipe.survey import field_kernels as fk
+from corrpipe.survey.checks import quote_rows
+from corrpipe.survey.footprint import Footprint, _as_angles
+
+__all__ = ["CIRCLE", "RECTANGLE", "FieldFootprint", "cap_area_sr", "rectangle_area_sr",
+           "unit_vectors_rad"]
+
+CIRCLE = 0
+"""Shape code of a circular field (spherical cap)."""
+RECTANGLE = 1
+"""Shape code of a rectangular (or square) field with great-circle edges."""
+
+_MAX_SIZE_DEG = 90.0
+
+
+def cap_area_sr(radius_rad) -> np.ndarray:
+    """Solid angle of a spherical cap, 2 pi (1 - cos r) = 4 pi sin^2(r / 2), in sr.
+
+    Notes
+    -----
+    Archimedes' hat-box theorem (common practice); the sin^2 form keeps precision for small r.
+    """
+    return 4.0 * np.pi * np.sin(0.5 * np.asarray(radius_rad, dtype=np.float64)) ** 2
+
+
+def rectangle_area_sr(side_a_rad, side_b_rad) -> np.ndarray:
+    """Solid angle of a gnomonic rectangle with angular sides (s_a, s_b), in sr.
+
+    Notes
+    -----
+    Omega = 4 arcsin(sin(s_a / 2) sin(s_b / 2)), the solid angle of a right rectangular
+    pyramid with apex angles s_a and s_b (closed form quoted from memory; checked in the tests
+    against a scipy integral of dx dy / (1 + x^2 + y^2)^(3/2) and against L'Huilier's theorem).
+    """
+    a = 0.5 * np.asarray(side_a_rad, dtype=np.float64)
+    b = 0.5 * np.asarray(side_b_rad, dtype=np.float64)
+    return 4.0 * np.arcsin(np.sin(a) * np.sin(b))
+
+
+def unit_vectors_rad(ra_rad, dec_rad) -> np.ndarray:
+    """Unit vectors, shape (n, 3), of directions in radians."""
+    cd = np.cos(dec_rad)
+    return np.column_stack([cd * np.cos(ra_rad), cd * np.sin(ra_rad), np.sin(dec_rad)])
+
+
+def _to_radec_deg(vec: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    ra = np.degrees(np.arctan2(vec[:, 1], vec[:, 0])) % 360.0
+    # atan2 keeps full precision near the poles, where arcsin(z) loses it
+    dec = np.degrees(np.arctan2(vec[:, 2], np.hypot(vec[:, 0], vec[:, 1])))
+    return ra, dec
+
+
+def _check_rows(where: str, column: str, bad: np.ndarray, problem: str, fix: str) -> None:
+    if np.any(bad):
+        rows = np.flatnonzero(bad)
+        raise InputError(f"{where}: column {column!r} has {rows.size} of {bad.size} fields "
+                         f"{problem} (rows, counted from 0: {quote_rows(rows)}); {fix}")
+
+
+@dataclass(frozen=True, eq=False)
+class _SkyGrid:
+    """Candidate fields per sky cell (see :mod:`corrpipe.survey.field_kernels`)."""
+
+    band: float
+    n_ra: np.ndarray
+    key_stride: int
+    keys: np.ndarray          # sorted unique cell keys
+    starts: np.ndarray        # offsets of each key's list in ``fields``
+    fields: np.ndarray        # field indices, grouped by key, table order inside a key
+
+    @classmethod
+    def build(cls, ra, dec, radius) -> _SkyGrid:
+        band = float(np.clip(2.0 * np.percentile(radius, 90), 2e-6, np.pi / 2))
+        while True:
+            n_bands = max(1, int(np.ceil(np.pi / band)))
+            band = np.pi / n_bands
+            edge = -0.5 * np.pi + band * np.arange(n_bands + 1)
+            nearest = np.minimum(np.abs(edge[:-1]), np.abs(edge[1:]))
+            nearest[(edge[:-1] < 0) & (edge[1:] > 0)] = 0.0
+            n_ra = np.maximum(1, np.floor(2 * np.pi * np.cos(nearest) / band)).astype(np.int64)
+            counts = fk.count_cells(ra, dec, radius, band, n_ra)
+            if counts.sum() <= 16 * ra.size + 1_000_000 or band >= np.pi / 2:
+                break
+            band *= 2.0
+        starts = np.zeros(ra.size + 1, dtype=np.int64)
+        np.cumsum(counts, out=starts[1:])
+        keys = np.empty(int(starts[-1]), dtype=np.int64)
+        fields = np.empty(int(starts[-1]), dtype=np.int64)
+        key_stride = int(n_ra.max())
+        fk.fill_cells(ra, dec, radius, band, n_ra, key_stride, starts, keys, fields)
+        order = np.argsort(keys, kind="stable")
+        keys, fields = keys[order], fields[order]
+        ukeys, first = np.unique(keys, return_index=True)
+        return cls(band, n_ra, key_stride, ukeys, np.append(first, keys.size).astype(np.int64),
+                   fields)
+
+    def candidates(self, ra_rad, dec_rad) -> tuple[np.ndarray, np.ndarray]:
+        """Start and stop of each direction's candidate list in ``fields``."""
+        pk = fk.cell_keys(ra_rad, dec_rad, self.band, self.n_ra, self.key_stride)
+        idx = np.searchsorted(self.keys, pk)
+        idx_c = np.minimum(idx, self.keys.size - 1)
+        found = self.keys[idx_c] == pk
+        start = np.where(found, self.starts[idx_c], 0)
+        stop = np.where(found, self.starts[idx_c + 1], 0)
+        return start, stop
+
+
+@dataclass(frozen=True, eq=False)
+class FieldFootprint(Footprint):
+    """A footprint made of many fields (circles, squares, rectangles), with optional vetoes.
+
+    Parameters
+    ----------
+    ra, dec : array_like, shape (n_fields,)
+        Field centres in degrees.
+    shape : array_like of int, shape (n_fields,)
+        :data:`CIRCLE` or :data:`RECTANGLE` per field.
+    side_a, side_b : array_like, shape (n_fields,)
+        Rectangle sides in degrees (side_a along the position angle); ignored for circles.
+    position_angle : array_like, shape (n_fields,)
+        Direction of side_a, degrees from north through east.
+    radius : array_like, shape (n_fields,)
+        Circle radii in degrees; ignored for rectangles.
+    completeness : array_like, shape (n_fields,), optional
+        Fraction of targets observed in each field, in [0, 1] (default 1). Random density is
+        proportional to it.
+    depth_class : array_like of int, shape (n_fields,), optional
+        Group of fields sharing one radial selection (default: all in class 0).
+    vetoes : FieldFootprint, optional
+        Holes removed from every field (their own completeness is ignored).
+    source : str
+        Where the table came from (quoted in errors).
+    overlap_samples : int
+        Points drawn in each field touched by another field or a veto to measure the part
+        it owns.
+
+    Notes
+    -----
+    Sides and radii must be positive and below 90 degrees.
+    """
+
+    ra: np.ndarray
+    dec: np.ndarray
+    shape: np.ndarray
+    side_a: np.ndarray
+    side_b: np.ndarray
+    position_angle: np.ndarray
+    radius: np.ndarray
+    completeness_values: np.ndarray | None = None
+    depth_class: np.ndarray | None = None
+    vetoes: FieldFootprint | None = None
+    source: str = "<field arrays>"
+    overlap_samples: int = 20_000
+    _geometry: dict = field(default_factory=dict, repr=False)
+
+    def __post_init__(self):
+        where = self.source
+        ra, dec = _as_angles(self.ra, self.dec)
+        n = ra.size
+        if n == 0:
+            raise InputError(f"{where}: the field table has no rows; give at least one field")
+
+        def column(values, default, dtype=np.float64):
+            arr = np.full(n, default, dtype=dtype) if values is None else \
+                np.broadcast_to(np.asarray(values, dtype=dtype), (n,)).copy()
+            return arr
+
+        shape = column(self.shape, RECTANGLE, np.int64)
+        side_a, side_b = column(self.side_a, np.nan), column(self.side_b, np.nan)
+        pa, radius = column(self.position_angle, 0.0), column(self.radius, np.nan)
+        comp = column(self.completeness_values, 1.0)
+        cls = column(self.depth_class, 0, np.int64)
+        is_circle = shape == CIRCLE
+        _check_rows(where, "shape", (shape != CIRCLE) & (shape != RECTANGLE), "with an "
+                    "unknown shape", "use 'circle', 'square' or 'rectangle'")
+        _check_rows(where, "ra", ~np.isfinite(ra), "not finite", "give RA in degrees")
+        _check_rows(where, "dec", ~(np.abs(dec) <= 90), "outside [-90, 90] deg",
+                    "give Dec in degrees")
+        for name, values, mask in (("radius", radius, is_circle),
+                                   ("side_a", side_a, ~is_circle),
+                                   ("side_b", side_b, ~is_circle)):
+            _check_rows(where, name, mask & ~np.isfinite(values), "missing or not finite",
+                        f"give a {name} for every such field")
+            _check_rows(where, name, mask & np.isfinite(values) & (values <= 0),
+                        "zero or negative", "sizes must be > 0")
+            _check_rows(where, name, mask & (values >= _MAX_SIZE_DEG),
+                        f"of {_MAX_SIZE_DEG:g} deg or more", "split such a field or check "
+                        "the size unit")
+        _check_rows(where, "position_angle", ~is_circle & ~np.isfinite(pa), "not finite",
+                    "give the position angle in degrees (0 = side_a along north)")
+        _check_rows(where, "completeness", ~((comp >= 0) & (comp <= 1)), "outside [0, 1]",
+                    "completeness is the observed fraction of targets")
+        if not np.any(comp > 0):
+            raise InputError(f"{where}: every field has completeness 0; the footprint is empty")
+        _check_rows(where, "depth_class", cls < 0, "negative", "depth classes are integers "
+                    ">= 0")
+        for name, value in (("ra", ra % 360.0), ("dec", dec), ("shape", shape),
+                            ("side_a", side_a), ("side_b", side_b), ("position_angle", pa),
+                            ("radius", radius), ("completeness_values", comp),
+                            ("depth_class", cls)):
+            value.setflags(write=False)
+            object.__setattr__(self, name, value)
+        self._build_geometry()
+
+    # --- geometry ---------------------------------------------------------------------
+
+    def _build_geometry(self) -> None:
+        ra_r, dec_r = np.radians(self.ra), np.radians(self.dec)
+        centre = unit_vectors_rad(ra_r, dec_r)
+        east = np.column_stack([-np.sin(ra_r), np.cos(ra_r), np.zeros_like(ra_r)])
+        north = np.column_stack([-np.sin(dec_r) * np.cos(ra_r), -np.sin(dec_r) * np.sin(ra_r),
+                                 np.cos(dec_r)])
+        pole = np.abs(self.dec) == 90.0
+        east[pole] = [0.0, 1.0, 0.0]
+        north[pole] = np.where(self.dec[pole, None] > 0, [[-1.0, 0.0, 0.0]], [[1.0, 0.0, 0.0]])
+        pa = np.radians(self.position_angle)[:, None]
+        axis1 = np.cos(pa) * north + np.sin(pa) * east
+        axis2 = -np.sin(pa) * north + np.cos(pa) * east
+        circle = self.shape == CIRCLE
+        half_a = np.radians(np.where(circle, 1.0, self.side_a)) / 2
+        half_b = np.radians(np.where(circle, 1.0, self.side_b)) / 2
+        r = np.radians(np.where(circle, self.radius, 1.0))
+        size1 = np.where(circle, 2.0 * np.sin(r / 2), np.tan(half_a))
+        size2 = np.where(circle, 0.0, np.tan(half_b))
+        bound = np.where(circle, r, np.arctan(np.hypot(np.tan(half_a), np.tan(half_b))))
+        areas = np.where(circle, cap_area_sr(r), rectangle_area_sr(2 * half_a, 2 * half_b))
+        grid = _SkyGrid.build(ra_r, dec_r, bound)
+        self._geometry.update(centre=np.ascontiguousarray(centre),
+                              axis1=np.ascontiguousarray(axis1),
+                              axis2=np.ascontiguousarray(axis2), size1=size1, size2=size2,
+                              bound=bound, areas=areas, grid=grid)
+
+    def __len__(self) -> int:
+        return int(self.ra.size)
+
+    @property
+    def n_fields(self) -> int:
+        """Number of fields in the table."""
+        return int(self.ra.size)
+
+    def field_areas_sr(self) -> np.ndarray:
+        """Exact solid angle of each field on its own (overlaps and vetoes ignored), sr."""
+        return self._geometry["areas"].copy()
+
+    def _covering_fields(self, vec: np.ndarray, ra_rad=None, dec_rad=None) -> np.ndarray:
+        g = self._geometry
+        if ra_rad is None:
+            ra_rad = np.arctan2(vec[:, 1], vec[:, 0])
+            dec_rad = np.arctan2(vec[:, 2], np.hypot(vec[:, 0], vec[:, 1]))
+        start, stop = g["grid"].candidates(ra_rad, dec_rad)
+        return fk.first_owner(vec, start, stop, g["grid"].fields, self.shape, g["centre"],
+                              g["axis1"], g["axis2"], g["size1"], g["size2"])
+
+    def _vetoed(self, vec: np.ndarray) -> np.ndarray:
+        if self.vetoes is None:
+            return np.zeros(vec.shape[0], dtype=bool)
+        return self.vetoes._covering_fields(vec) >= 0
+
+    def owner(self, ra_deg, dec_deg) -> np.ndarray:
+        """Index of the field each direction belongs to (first listed), -1 outside or vetoed."""
+        ra, dec = _as_angles(ra_deg, dec_deg)
+        ra_r, dec_r = np.radians(ra), np.radians(dec)
+        vec = unit_vectors_rad(ra_r, dec_r)
+        own = self._covering_fields(vec, ra_r, dec_r)
+        if self.vetoes is not None:
+            own[self._vetoed(vec)] = -1
+        return own
+
+    def contains(self, ra_deg, dec_deg) -> np.ndarray:
+        return self.owner(ra_deg, dec_deg) >= 0
+
+    def completeness(self, ra_deg, dec_deg) -> np.ndarray:
+        own = self.owner(ra_deg, dec_deg)
+        return np.where(own >= 0, self.completeness_values[np.maximum(own, 0)], 0.0)
+
+    def depth_class_of(self, ra_deg, dec_deg) -> np.ndarray:
+        """Depth class of the field owning each direction, -1 outside."""
+        own = self.owner(ra_deg, dec_deg)
+        return np.where(own >= 0, self.depth_class[np.maximum(own, 0)], -1)
+
+    # --- overlaps and areas -----------------------------------------------------------
+
+    @functools.cached_property
+    def _touched(self) -> np.ndarray:
+        """Fields that a field listed earlier, or a veto, may overlap (bounding caps meet)."""
+        g = self._geometry
+        touched = np.zeros(self.n_fields, dtype=bool)
+        tree = cKDTree(g["centre"])
+        reach = 2.0 * np.sin(np.minimum(2 * g["bound"].max(), np.pi) / 2)
+        for i, j in tree.query_pairs(reach, output_type="ndarray"):
+            if _caps_meet(g["centre"][i], g["bound"][i], g["centre"][j], g["bound"][j]):
+                touched[max(i, j)] = True
+        if self.vetoes is not None:
+            v = self.vetoes._geometry
+            reach = 2.0 * np.sin(min(g["bound"].max() + v["bound"].max(), np.pi) / 2)
+            hits = cKDTree(v["centre"]).query_ball_point(g["centre"], reach)
+            for i, js in enumerate(hits):
+                for j in js:
+                    if _caps_meet(g["centre"][i], g["bound"][i], v["centre"][j], v["bound"][j]):
+                        touched[i] = True
+                        break
+        return touched
+
+    def _draw_in_fields(self, which: np.ndarray, rng: np.random.Generator
+                        ) -> tuple[np.ndarray, np.ndarray]:
+        """One proposal per entry of ``which`` (field indices): unit vectors and acceptance.
+
+        Circles are sampled exactly; rectangles uniformly in the gnomonic plane, accepted with
+        probability (1 + x^2 + y^2)^(-3/2) (the gnomonic area element, common practice), so
+        accepted points are uniform on the sphere.
+        """
+        g = self._geometry
+        m = which.size
+        c, a1, a2 = g["centre"][which], g["axis1"][which], g["axis2"][which]
+        circle = self.shape[which] == CIRCLE
+        u1, u2 = rng.random(m), rng.random(m)
+        # circle: 1 - cos(theta) uniform in [0, 1 - cos r]  <=>  sin(theta/2) = sqrt(u) sin(r/2)
+        half_chord = 0.5 * g["size1"][which]
+        theta = 2.0 * np.arcsin(np.sqrt(u1) * half_chord)
+        phi = 2.0 * np.pi * u2
+        x = np.where(circle, np.tan(theta) * np.cos(phi), (2 * u1 - 1) * g["size1"][which])
+        y = np.where(circle, np.tan(theta) * np.sin(phi), (2 * u2 - 1) * g["size2"][which])
+        rho2 = x * x + y * y
+        vec = c + x[:, None] * a1 + y[:, None] * a2
+        vec /= np.sqrt(1.0 + rho2)[:, None]
+        accept = circle | (rng.random(m) * (1.0 + rho2) ** 1.5 < 1.0)
+        return vec, accept
+
+    @functools.cached_property
+    def _owned_fraction(self) -> tuple[np.ndarray, np.ndarray]:
+        """Fraction of each field it owns, and its sampling error (0 for untouched fields)."""
+        frac, err = np.ones(self.n_fields), np.zeros(self.n_fields)
+        touched = np.flatnonzero(self._touched)
+        rng = np.random.default_rng(7_193_001)
+        n_s = int(self.overlap_samples)
+        for chunk in np.array_split(touched, max(1, touched.size * n_s // 2_000_000 + 1)):
+            if chunk.size == 0:
+                continue
+            which = np.repeat(chunk, n_s)
+            vec, ok = self._draw_in_fields(which, rng)
+            mine = (self._covering_fields(vec) == which) & ~self._vetoed(vec)
+            kept = np.bincount(np.searchsorted(chunk, which[ok]), minlength=chunk.size)
+            good = np.bincount(np.searchsorted(chunk, which[ok & mine]), minlength=chunk.size)
+            f = good / np.maximum(kept, 1)
+            frac[chunk] = f
+            err[chunk] = np.sqrt(f * (1 - f) / np.maximum(kept, 1))
+        return frac, err
+
+    def owned_areas_sr(self) -> np.ndarray:
+        """Solid angle each field owns (overlaps with earlier fields and vetoes removed), sr."""
+        return self._geometry["areas"] * self._owned_fraction[0]
+
+    def area_sr(self) -> float:
+        return float(self.owned_areas_sr().sum())
+
+    def effective_area_sr(self) -> float:
+        """Completeness-weighted area, sr (the area the random density is normalised to)."""
+        return float(np.sum(self.owned_areas_sr() * self.completeness_values))
+
+    def area_error_sr(self) -> float:
+        """One-sigma sampling error of :meth:`area_sr` (0 when no fields overlap or are vetoed)."""
+        return float(np.sqrt(np.sum((self._geometry["areas"] * self._owned_fraction[1]) ** 2)))
+
+    def class_areas_sr(self, effective: bool = True) -> np.ndarray:
+        """Area of each depth class (completeness-weighted by default), sr."""
+        w = self.owned_areas_sr() * (self.completeness_values if effective else 1.0)
+        return np.bincount(self.depth_class, weights=w, minlength=int(self.depth_class.max()) + 1)
+
+    # --- sampling ---------------------------------------------------------------------
+
+    def sample_fields(self, n: int, rng: np.random.Generator, by_completeness: bool = True
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Draw ``n`` directions with density proportional to the owning field's completeness.
+
+        With ``by_completeness=False`` the density is uniform over the footprint instead.
+        Returns RA and Dec (degrees) and the owning field of each point.
+        """
+        weights = self._geometry["areas"] * (self.completeness_values if by_completeness
+                                             else 1.0)
+        cdf = np.cumsum(weights)
+        cdf /= cdf[-1]
+        touched = self._touched
+        out_vec, out_field, have, tries = [], [], 0, 0
+        while have < n:
+            m = max(1024, int(1.1 * (n - have)) + 64)
+            which = np.minimum(np.searchsorted(cdf, rng.random(m), side="right"),
+                               self.n_fields - 1)
+            vec, ok = self._draw_in_fields(which, rng)
+            check = ok & touched[which]
+            if np.any(check):
+                idx = np.flatnonzero(check)
+                sub = vec[idx]
+                ok[idx] = (self._covering_fields(sub) == which[idx]) & ~self._vetoed(sub)
+            out_vec.append(vec[ok])
+            out_field.append(which[ok])
+            have += int(ok.sum())
+            tries += 1
+            if tries > 1000:
+                raise InputError(f"{self.source}: could not draw points inside the fields; "
+                                 "the vetoes or overlaps seem to remove every field")
+        vec = np.concatenate(out_vec)[:n]
+        ra, dec = _to_radec_deg(vec)
+        return ra, dec, np.concatenate(out_field)[:n]
+
+    def sample(self, n, rng):
+        """Draw ``n`` directions; density proportional to completeness (degrees)."""
+        ra, dec, _ = self.sample_fields(n, rng)
+        return ra, dec
+
+
+def _caps_meet(c1, r1, c2, r2) -> bool:
+    angle = 2.0 * np.arcsin(min(1.0, 0.5 * float(np.linalg.norm(c1 - c2))))
+    return angle <= r1 + r2 + 1e-12
