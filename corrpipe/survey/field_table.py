@@ -26,11 +26,11 @@ from pathlib import Path
 
 import numpy as np
 
-from corrpipe.errors import InputError
+from corrpipe.errors import ConfigError, InputError
 from corrpipe.survey.fields import CIRCLE, RECTANGLE, FieldFootprint
 from corrpipe.survey.readers import detect_format
 
-__all__ = ["SIZE_UNITS", "read_field_table"]
+__all__ = ["SIZE_UNITS", "field_footprint_from_settings", "read_field_table"]
 
 SIZE_UNITS = {"deg": 1.0, "arcmin": 1.0 / 60.0, "arcsec": 1.0 / 3600.0}
 """Units accepted for field sizes, with their size in degrees."""
@@ -74,7 +74,7 @@ def _numeric(values, name: str, path: Path) -> np.ndarray:
 
 
 def read_field_table(path: str | os.PathLike, *, size_unit: str = "arcmin",
-                     vetoes: FieldFootprint | None = None,
+                     vetoes: FieldFootprint | None = None, depth_groups: int = 0,
                      overlap_samples: int = 20_000) -> FieldFootprint:
     """Read a field table and build its footprint.
 
@@ -86,6 +86,10 @@ def read_field_table(path: str | os.PathLike, *, size_unit: str = "arcmin",
         Unit of ``side``/``side_a``/``side_b``/``radius``.
     vetoes : FieldFootprint, optional
         Holes removed from the fields.
+    depth_groups : int
+        Without a ``depth_class`` column, group the fields into this many classes by the
+        quantiles of a ``depth`` column (any quantity that orders the fields by depth, e.g.
+        the line-flux limit); 0 keeps one class.
     overlap_samples : int
         See :class:`~corrpipe.survey.fields.FieldFootprint`.
 
@@ -157,9 +161,30 @@ def read_field_table(path: str | os.PathLike, *, size_unit: str = "arcmin",
             raise InputError(f"{where}: column 'depth_class' must hold whole numbers; row "
                              f"{np.flatnonzero(bad)[0]} has {cls_f[bad][0]!r}")
         cls = cls_f.astype(np.int64)
+    elif depth_groups > 0:
+        depth = _column(table, "depth", path, required=True,
+                        what=" (footprint.field_depth_groups > 0 groups fields by it)")
+        depth = _numeric(depth, "depth", path)
+        if not np.all(np.isfinite(depth)):
+            bad = np.flatnonzero(~np.isfinite(depth))
+            raise InputError(f"{where}: column 'depth' is not finite in row {bad[0]}")
+        cuts = np.quantile(depth, np.linspace(0, 1, int(depth_groups) + 1)[1:-1])
+        cls = np.searchsorted(cuts, depth, side="right").astype(np.int64)
     return FieldFootprint(
         ra, dec, shape, size(side_a, "side_a"), size(side_b, "side_b"),
         None if pa is None else _numeric(pa, "position_angle", path),
         size(radius, "radius"),
         None if comp is None else _numeric(comp, "completeness", path), cls,
         vetoes=vetoes, source=where, overlap_samples=overlap_samples)
+
+
+def field_footprint_from_settings(settings) -> FieldFootprint:
+    """The field footprint a ``[footprint]`` table with ``kind = "fields"`` describes."""
+    if not settings.fields_file:
+        raise ConfigError("footprint.kind = 'fields' needs footprint.fields_file")
+    holes = None
+    if settings.field_vetoes_file:
+        holes = read_field_table(settings.field_vetoes_file, size_unit=settings.field_size_unit)
+    return read_field_table(settings.fields_file, size_unit=settings.field_size_unit,
+                            vetoes=holes, depth_groups=settings.field_depth_groups,
+                            overlap_samples=settings.field_overlap_samples)

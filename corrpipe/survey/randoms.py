@@ -295,8 +295,12 @@ class RandomsSettings:
     size_factor: float = setting(20.0, "randoms per data object", low=1.0)
     n_sets: int = setting(1, "independent random sets for split-random RR "
                              "(Keihänen et al. 2019); 1 = one catalogue", low=1)
-    redshifts: str = setting("shuffle", "random redshifts drawn from the data (with weights) "
-                             "or from a smoothed n(z)", choices=("shuffle", "smooth"))
+    redshifts: str = setting("shuffle", "random redshifts drawn from the data (with weights), "
+                             "from a smoothed n(z), from the data of the same depth class "
+                             "(field footprints), or from a per-class dN/dz table",
+                             choices=("shuffle", "smooth", "shuffle_by_class", "table"))
+    selection_file: str = setting("", "dN/dz table per depth class (columns depth_class, "
+                                  "z_min, z_max, dndz) for redshifts = 'table'", path=True)
     smoothing: float = setting(0.01, "Gaussian kernel width of the smoothed n(z)",
                                unit="redshift", low=0.0, low_open=True, high=0.5)
     seed: int = setting(-1, "random seed; -1 derives it from run.seed", low=-1)

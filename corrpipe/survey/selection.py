@@ -142,6 +142,20 @@ class TabulatedSelection:
             raise InputError(f"{self.source}: depth class(es) {empty.tolist()[:8]} have fields "
                              "but an all-zero dN/dz")
 
+    def restricted(self, z_min: float | None, z_max: float | None) -> TabulatedSelection:
+        """The same selection cut to z_min <= z <= z_max (partial bins keep their share)."""
+        lo = self.z_edges[0] if z_min is None else max(float(z_min), self.z_edges[0])
+        hi = self.z_edges[-1] if z_max is None else min(float(z_max), self.z_edges[-1])
+        if not hi > lo:
+            raise InputError(f"{self.source}: the table covers z = {self.z_edges[0]:g} .. "
+                             f"{self.z_edges[-1]:g}, outside the catalogue's redshift cut "
+                             f"{z_min} .. {z_max}")
+        edges = np.concatenate([[lo], self.z_edges[(self.z_edges > lo) & (self.z_edges < hi)],
+                                [hi]])
+        cum = np.concatenate([np.zeros((self.n_classes, 1)), self._cdf], axis=1)
+        part = np.diff(np.array([np.interp(edges, self.z_edges, c) for c in cum]), axis=1)
+        return TabulatedSelection(edges, part, self.source)
+
     def pdf(self, k: int) -> np.ndarray:
         """Probability of each redshift bin for class ``k``."""
         return self.dndz[k] / self._cdf[k, -1]
