@@ -17,9 +17,10 @@ Kernel module (flat ``@njit(cache=True)`` functions over arrays and numbers).
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
 
-__all__ = ["all_owners_count", "cell_keys", "count_cells", "fill_cells", "first_owner"]
+__all__ = ["count_cells", "draw_in_fields", "fill_cells", "owners_of_angles",
+           "owners_of_vectors", "vectors_to_angles_deg"]
 
 EDGE_TOLERANCE = 4e-15
 """Closed field edges: a direction within this many radians (~1e-9 arcsec, a few times the
@@ -98,21 +99,6 @@ def fill_cells(ra, dec, radius, band, n_ra, key_stride, starts, keys, fields):
 
 
 @njit(cache=True)
-def cell_keys(ra, dec, band, n_ra, key_stride):
-    """Cell key of each direction (radians)."""
-    n_bands = n_ra.size
-    out = np.empty(ra.size, dtype=np.int64)
-    for i in range(ra.size):
-        b = _band_of(dec[i], band, n_bands)
-        m = n_ra[b]
-        j = int(np.floor((ra[i] % (2.0 * np.pi)) / (2.0 * np.pi / m)))
-        if j >= m:
-            j = m - 1
-        out[i] = b * key_stride + j
-    return out
-
-
-@njit(cache=True)
 def _inside(px, py, pz, f, shape, centre, axis1, axis2, size1, size2):
     cx, cy, cz = centre[f, 0], centre[f, 1], centre[f, 2]
     if shape[f] == 0:
@@ -131,35 +117,94 @@ def _inside(px, py, pz, f, shape, centre, axis1, axis2, size1, size2):
 
 
 @njit(cache=True)
-def first_owner(vec, cell_start, cell_stop, cell_fields, shape, centre, axis1, axis2,
-                size1, size2):
-    """Index of the first field (table order) containing each direction, -1 if none.
+def _lookup(px, py, pz, ra, dec, band, n_ra, key_stride, ukeys, ustarts, cell_fields,
+            shape, centre, axis1, axis2, size1, size2):
+    n_bands = n_ra.size
+    b = _band_of(dec, band, n_bands)
+    m = n_ra[b]
+    j = int(np.floor((ra % (2.0 * np.pi)) / (2.0 * np.pi / m)))
+    if j >= m:
+        j = m - 1
+    key = b * key_stride + j
+    k = np.searchsorted(ukeys, key)
+    if k >= ukeys.size or ukeys[k] != key:
+        return -1
+    for q in range(ustarts[k], ustarts[k + 1]):
+        f = cell_fields[q]
+        if _inside(px, py, pz, f, shape, centre, axis1, axis2, size1, size2):
+            return f
+    return -1
 
-    ``cell_start[i]``/``cell_stop[i]`` bound the candidate
-    list of the i-th point in ``cell_fields`` (empty when its cell holds no field). ``size1``
-    is the chord of the radius for circles and ``tan(side/2)`` for rectangles.
+
+@njit(cache=True, parallel=True)
+def owners_of_angles(ra, dec, band, n_ra, key_stride, ukeys, ustarts, cell_fields,
+                     shape, centre, axis1, axis2, size1, size2):
+    """First field (table order) containing each direction given in radians, -1 if none."""
+    n = ra.size
+    out = np.empty(n, dtype=np.int64)
+    for i in prange(n):
+        cd = np.cos(dec[i])
+        out[i] = _lookup(cd * np.cos(ra[i]), cd * np.sin(ra[i]), np.sin(dec[i]), ra[i], dec[i],
+                         band, n_ra, key_stride, ukeys, ustarts, cell_fields, shape, centre,
+                         axis1, axis2, size1, size2)
+    return out
+
+
+@njit(cache=True, parallel=True)
+def owners_of_vectors(vec, band, n_ra, key_stride, ukeys, ustarts, cell_fields,
+                      shape, centre, axis1, axis2, size1, size2):
+    """First field (table order) containing each unit vector, -1 if none."""
+    n = vec.shape[0]
+    out = np.empty(n, dtype=np.int64)
+    for i in prange(n):
+        px, py, pz = vec[i, 0], vec[i, 1], vec[i, 2]
+        ra = np.arctan2(py, px)
+        dec = np.arctan2(pz, np.sqrt(px * px + py * py))
+        out[i] = _lookup(px, py, pz, ra, dec, band, n_ra, key_stride, ukeys, ustarts,
+                         cell_fields, shape, centre, axis1, axis2, size1, size2)
+    return out
+
+
+@njit(cache=True, parallel=True)
+def draw_in_fields(which, u1, u2, u3, shape, centre, axis1, axis2, size1, size2):
+    """One proposal per entry of ``which``: unit vectors (n, 3) and whether to keep each.
+
+    Circles: sin(theta/2) = sqrt(u1) sin(r/2) (1 - cos theta uniform, so uniform in the cap),
+    azimuth 2 pi u2, always kept. Rectangles: (x, y) uniform on the gnomonic rectangle, kept
+    with probability (1 + x^2 + y^2)^(-3/2), the gnomonic area element (common practice).
     """
-    n = vec.shape[0]
-    out = np.full(n, -1, dtype=np.int64)
-    for i in range(n):
-        px, py, pz = vec[i, 0], vec[i, 1], vec[i, 2]
-        for k in range(cell_start[i], cell_stop[i]):
-            f = cell_fields[k]
-            if _inside(px, py, pz, f, shape, centre, axis1, axis2, size1, size2):
-                out[i] = f
-                break
-    return out
+    n = which.size
+    vec = np.empty((n, 3))
+    keep = np.empty(n, dtype=np.bool_)
+    for i in prange(n):
+        f = which[i]
+        if shape[f] == 0:
+            theta = 2.0 * np.arcsin(np.sqrt(u1[i]) * 0.5 * size1[f])
+            phi = 2.0 * np.pi * u2[i]
+            t = np.tan(theta)
+            x, y = t * np.cos(phi), t * np.sin(phi)
+            keep[i] = True
+        else:
+            x = (2.0 * u1[i] - 1.0) * size1[f]
+            y = (2.0 * u2[i] - 1.0) * size2[f]
+            keep[i] = u3[i] * (1.0 + x * x + y * y) ** 1.5 < 1.0
+        norm = 1.0 / np.sqrt(1.0 + x * x + y * y)
+        for c in range(3):
+            vec[i, c] = (centre[f, c] + x * axis1[f, c] + y * axis2[f, c]) * norm
+    return vec, keep
 
 
-@njit(cache=True)
-def all_owners_count(vec, cell_start, cell_stop, cell_fields, shape, centre, axis1, axis2,
-                     size1, size2):
-    """Number of fields containing each direction (overlaps counted)."""
+@njit(cache=True, parallel=True)
+def vectors_to_angles_deg(vec):
+    """RA in [0, 360) and Dec (degrees) of unit vectors; atan2 keeps precision at the poles."""
     n = vec.shape[0]
-    out = np.zeros(n, dtype=np.int64)
-    for i in range(n):
+    ra = np.empty(n)
+    dec = np.empty(n)
+    for i in prange(n):
         px, py, pz = vec[i, 0], vec[i, 1], vec[i, 2]
-        for k in range(cell_start[i], cell_stop[i]):
-            if _inside(px, py, pz, cell_fields[k], shape, centre, axis1, axis2, size1, size2):
-                out[i] += 1
-    return out
+        a = np.degrees(np.arctan2(py, px))
+        ra[i] = a + 360.0 if a < 0.0 else a
+        if ra[i] >= 360.0:
+            ra[i] -= 360.0
+        dec[i] = np.degrees(np.arctan2(pz, np.sqrt(px * px + py * py)))
+    return ra, dec

@@ -78,13 +78,6 @@ def unit_vectors_rad(ra_rad, dec_rad) -> np.ndarray:
     return np.column_stack([cd * np.cos(ra_rad), cd * np.sin(ra_rad), np.sin(dec_rad)])
 
 
-def _to_radec_deg(vec: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    ra = np.degrees(np.arctan2(vec[:, 1], vec[:, 0])) % 360.0
-    # atan2 keeps full precision near the poles, where arcsin(z) loses it
-    dec = np.degrees(np.arctan2(vec[:, 2], np.hypot(vec[:, 0], vec[:, 1])))
-    return ra, dec
-
-
 def _check_rows(where: str, column: str, bad: np.ndarray, problem: str, fix: str) -> None:
     if np.any(bad):
         rows = np.flatnonzero(bad)
@@ -128,17 +121,6 @@ class _SkyGrid:
         ukeys, first = np.unique(keys, return_index=True)
         return cls(band, n_ra, key_stride, ukeys, np.append(first, keys.size).astype(np.int64),
                    fields)
-
-    def candidates(self, ra_rad, dec_rad) -> tuple[np.ndarray, np.ndarray]:
-        """Start and stop of each direction's candidate list in ``fields``."""
-        pk = fk.cell_keys(ra_rad, dec_rad, self.band, self.n_ra, self.key_stride)
-        idx = np.searchsorted(self.keys, pk)
-        idx_c = np.minimum(idx, self.keys.size - 1)
-        found = self.keys[idx_c] == pk
-        start = np.where(found, self.starts[idx_c], 0)
-        stop = np.where(found, self.starts[idx_c + 1], 0)
-        return start, stop
-
 
 @dataclass(frozen=True, eq=False)
 class FieldFootprint(Footprint):
@@ -277,14 +259,15 @@ class FieldFootprint(Footprint):
         """Exact solid angle of each field on its own (overlaps and vetoes ignored), sr."""
         return self._geometry["areas"].copy()
 
-    def _covering_fields(self, vec: np.ndarray, ra_rad=None, dec_rad=None) -> np.ndarray:
+    def _kernel_args(self) -> tuple:
         g = self._geometry
-        if ra_rad is None:
-            ra_rad = np.arctan2(vec[:, 1], vec[:, 0])
-            dec_rad = np.arctan2(vec[:, 2], np.hypot(vec[:, 0], vec[:, 1]))
-        start, stop = g["grid"].candidates(ra_rad, dec_rad)
-        return fk.first_owner(vec, start, stop, g["grid"].fields, self.shape, g["centre"],
-                              g["axis1"], g["axis2"], g["size1"], g["size2"])
+        grid = g["grid"]
+        return (grid.band, grid.n_ra, grid.key_stride, grid.keys, grid.starts, grid.fields,
+                self.shape, g["centre"], g["axis1"], g["axis2"], g["size1"], g["size2"])
+
+    def _covering_fields(self, vec: np.ndarray) -> np.ndarray:
+        """First field of the table containing each unit vector (vetoes ignored), -1 if none."""
+        return fk.owners_of_vectors(np.ascontiguousarray(vec), *self._kernel_args())
 
     def _vetoed(self, vec: np.ndarray) -> np.ndarray:
         if self.vetoes is None:
@@ -294,12 +277,12 @@ class FieldFootprint(Footprint):
     def owner(self, ra_deg, dec_deg) -> np.ndarray:
         """Index of the field each direction belongs to (first listed), -1 outside or vetoed."""
         ra, dec = _as_angles(ra_deg, dec_deg)
-        ra_r, dec_r = np.radians(ra), np.radians(dec)
-        vec = unit_vectors_rad(ra_r, dec_r)
-        own = self._covering_fields(vec, ra_r, dec_r)
+        ra_r, dec_r = np.radians(ra).ravel(), np.radians(dec).ravel()
+        own = fk.owners_of_angles(ra_r, dec_r, *self._kernel_args())
         if self.vetoes is not None:
-            own[self._vetoed(vec)] = -1
-        return own
+            hole = fk.owners_of_angles(ra_r, dec_r, *self.vetoes._kernel_args()) >= 0
+            own[hole] = -1
+        return own.reshape(ra.shape)
 
     def contains(self, ra_deg, dec_deg) -> np.ndarray:
         return self.owner(ra_deg, dec_deg) >= 0
@@ -340,26 +323,16 @@ class FieldFootprint(Footprint):
                         ) -> tuple[np.ndarray, np.ndarray]:
         """One proposal per entry of ``which`` (field indices): unit vectors and acceptance.
 
-        Circles are sampled exactly; rectangles uniformly in the gnomonic plane, accepted with
-        probability (1 + x^2 + y^2)^(-3/2) (the gnomonic area element, common practice), so
-        accepted points are uniform on the sphere.
+        Circles are sampled exactly; rectangles uniformly in the gnomonic plane and accepted
+        with the gnomonic area element, so accepted points are uniform on the sphere (see
+        :func:`corrpipe.survey.field_kernels.draw_in_fields`).
         """
         g = self._geometry
         m = which.size
-        c, a1, a2 = g["centre"][which], g["axis1"][which], g["axis2"][which]
-        circle = self.shape[which] == CIRCLE
-        u1, u2 = rng.random(m), rng.random(m)
-        # circle: 1 - cos(theta) uniform in [0, 1 - cos r]  <=>  sin(theta/2) = sqrt(u) sin(r/2)
-        half_chord = 0.5 * g["size1"][which]
-        theta = 2.0 * np.arcsin(np.sqrt(u1) * half_chord)
-        phi = 2.0 * np.pi * u2
-        x = np.where(circle, np.tan(theta) * np.cos(phi), (2 * u1 - 1) * g["size1"][which])
-        y = np.where(circle, np.tan(theta) * np.sin(phi), (2 * u2 - 1) * g["size2"][which])
-        rho2 = x * x + y * y
-        vec = c + x[:, None] * a1 + y[:, None] * a2
-        vec /= np.sqrt(1.0 + rho2)[:, None]
-        accept = circle | (rng.random(m) * (1.0 + rho2) ** 1.5 < 1.0)
-        return vec, accept
+        u = rng.random((3, m))
+        return fk.draw_in_fields(np.ascontiguousarray(which, dtype=np.int64), u[0], u[1], u[2],
+                                 self.shape, g["centre"], g["axis1"], g["axis2"], g["size1"],
+                                 g["size2"])
 
     @functools.cached_property
     def _owned_fraction(self) -> tuple[np.ndarray, np.ndarray]:
@@ -368,7 +341,7 @@ class FieldFootprint(Footprint):
         touched = np.flatnonzero(self._touched)
         rng = np.random.default_rng(7_193_001)
         n_s = int(self.overlap_samples)
-        for chunk in np.array_split(touched, max(1, touched.size * n_s // 2_000_000 + 1)):
+        for chunk in np.array_split(touched, max(1, touched.size * n_s // 250_000 + 1)):
             if chunk.size == 0:
                 continue
             which = np.repeat(chunk, n_s)
@@ -412,14 +385,14 @@ class FieldFootprint(Footprint):
         """
         weights = self._geometry["areas"] * (self.completeness_values if by_completeness
                                              else 1.0)
-        cdf = np.cumsum(weights)
-        cdf /= cdf[-1]
+        prob = weights / weights.sum()
         touched = self._touched
+        fields = np.arange(self.n_fields, dtype=np.int64)
         out_vec, out_field, have, tries = [], [], 0, 0
         while have < n:
             m = max(1024, int(1.1 * (n - have)) + 64)
-            which = np.minimum(np.searchsorted(cdf, rng.random(m), side="right"),
-                               self.n_fields - 1)
+            # proposals per field from one multinomial draw: grouped by field, cheap to gather
+            which = np.repeat(fields, rng.multinomial(m, prob))
             vec, ok = self._draw_in_fields(which, rng)
             check = ok & touched[which]
             if np.any(check):
@@ -433,9 +406,14 @@ class FieldFootprint(Footprint):
             if tries > 1000:
                 raise InputError(f"{self.source}: could not draw points inside the fields; "
                                  "the vetoes or overlaps seem to remove every field")
-        vec = np.concatenate(out_vec)[:n]
-        ra, dec = _to_radec_deg(vec)
-        return ra, dec, np.concatenate(out_field)[:n]
+        vec = np.concatenate(out_vec) if len(out_vec) > 1 else out_vec[0]
+        field_of = np.concatenate(out_field) if len(out_field) > 1 else out_field[0]
+        # proposals come grouped by field: put them in random order (callers may truncate a
+        # sample, which must not cut off the last fields) and drop the surplus
+        keep = rng.permutation(vec.shape[0])[:n]
+        vec, field_of = vec[keep], field_of[keep]
+        ra, dec = fk.vectors_to_angles_deg(vec)
+        return ra, dec, field_of
 
     def sample(self, n, rng):
         """Draw ``n`` directions; density proportional to completeness (degrees)."""
