@@ -1,15 +1,18 @@
-"""numba loops behind :mod:`corrpipe.survey.fields`: the sky grid of field candidates and the
-exact point-in-field test.
+"""numba loops behind :mod:`corrpipe.survey.fields`: the sky grid of candidate fields, the
+exact point-in-field test, sampling inside fields and the area a field owns.
 
 The sky is cut into declination bands of height ``band`` (radians); band ``b`` holds
 ``n_ra[b]`` equal cells in RA. A cell is named by the key ``b * key_stride + j``. Every field
 is registered in each cell its bounding cap touches; a direction is then tested exactly only
 against the fields registered in its own cell. Fields are registered in table order, so the
-first match in a cell's list is the covering field listed first.
+first match in a cell's list is the covering field listed first. For points drawn inside a
+known field, ownership needs only that field's neighbour lists (earlier fields and holes
+whose bounding caps meet it).
 
-Shapes (``shape`` codes): 0 = circle (cap of angular radius ``r``), 1 = rectangle (the region
-whose gnomonic projection about the centre is the rectangle ``|x| <= a``, ``|y| <= b`` in the
-rotated tangent axes ``u1``, ``u2``, i.e. four great-circle edges).
+Shapes (``shape`` codes): 0 = circle (cap of angular radius ``r``; ``size1`` is its chord
+2 sin(r/2)), 1 = rectangle (the region whose gnomonic projection about the centre is the
+rectangle ``|x| <= size1``, ``|y| <= size2`` in the rotated tangent axes ``axis1``,
+``axis2``, i.e. four great-circle edges).
 
 Kernel module (flat ``@njit(cache=True)`` functions over arrays and numbers).
 """
@@ -19,8 +22,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["count_cells", "draw_in_fields", "fill_cells", "owners_of_angles",
-           "owners_of_vectors", "vectors_to_angles_deg"]
+__all__ = ["count_cells", "covered_by_neighbours", "draw_in_fields", "fill_cells",
+           "owned_fractions", "owners_of_angles", "vectors_to_angles_deg"]
 
 EDGE_TOLERANCE = 4e-15
 """Closed field edges: a direction within this many radians (~1e-9 arcsec, a few times the
@@ -151,21 +154,6 @@ def owners_of_angles(ra, dec, band, n_ra, key_stride, ukeys, ustarts, cell_field
 
 
 @njit(cache=True, parallel=True)
-def owners_of_vectors(vec, band, n_ra, key_stride, ukeys, ustarts, cell_fields,
-                      shape, centre, axis1, axis2, size1, size2):
-    """First field (table order) containing each unit vector, -1 if none."""
-    n = vec.shape[0]
-    out = np.empty(n, dtype=np.int64)
-    for i in prange(n):
-        px, py, pz = vec[i, 0], vec[i, 1], vec[i, 2]
-        ra = np.arctan2(py, px)
-        dec = np.arctan2(pz, np.sqrt(px * px + py * py))
-        out[i] = _lookup(px, py, pz, ra, dec, band, n_ra, key_stride, ukeys, ustarts,
-                         cell_fields, shape, centre, axis1, axis2, size1, size2)
-    return out
-
-
-@njit(cache=True, parallel=True)
 def draw_in_fields(which, u1, u2, u3, shape, centre, axis1, axis2, size1, size2):
     """One proposal per entry of ``which``: unit vectors (n, 3) and whether to keep each.
 
@@ -208,3 +196,78 @@ def vectors_to_angles_deg(vec):
             ra[i] -= 360.0
         dec[i] = np.degrees(np.arctan2(pz, np.sqrt(px * px + py * py)))
     return ra, dec
+
+
+@njit(cache=True)
+def _in_neighbour(px, py, pz, f, f_start, f_list, shape, centre, axis1, axis2, size1, size2,
+                  v_start, v_list, h_shape, h_centre, h_axis1, h_axis2, h_size1, h_size2):
+    """Whether a point of field f lies in a field listed before f or in a hole near f."""
+    for q in range(f_start[f], f_start[f + 1]):
+        if _inside(px, py, pz, f_list[q], shape, centre, axis1, axis2, size1, size2):
+            return True
+    for q in range(v_start[f], v_start[f + 1]):
+        if _inside(px, py, pz, v_list[q], h_shape, h_centre, h_axis1, h_axis2, h_size1,
+                   h_size2):
+            return True
+    return False
+
+
+@njit(cache=True, parallel=True)
+def covered_by_neighbours(vec, which, f_start, f_list, shape, centre, axis1, axis2, size1,
+                          size2, v_start, v_list, h_shape, h_centre, h_axis1, h_axis2,
+                          h_size1, h_size2):
+    """For points drawn in fields ``which``: True where an earlier field or a hole covers
+    them (so the field does not own them). ``f_*``/``v_*`` are CSR lists of each field's
+    earlier overlapping fields and nearby holes; ``h_*`` the holes' geometry."""
+    n = which.size
+    out = np.empty(n, dtype=np.bool_)
+    for i in prange(n):
+        out[i] = _in_neighbour(vec[i, 0], vec[i, 1], vec[i, 2], which[i], f_start, f_list,
+                               shape, centre, axis1, axis2, size1, size2, v_start, v_list,
+                               h_shape, h_centre, h_axis1, h_axis2, h_size1, h_size2)
+    return out
+
+
+@njit(cache=True, parallel=True)
+def owned_fractions(touched, jitter, f_start, f_list, shape, centre, axis1, axis2, size1,
+                    size2, v_start, v_list, h_shape, h_centre, h_axis1, h_axis2, h_size1,
+                    h_size2):
+    """Area fraction of each touched field that it owns (no earlier field, no hole).
+
+    Each field is sampled on a jittered n x n grid (``jitter``, shape (n * n, 2), the same
+    offsets for every field) of its bounding rectangle in the gnomonic plane, each point
+    weighted by the gnomonic area element (1 + x^2 + y^2)^(-3/2) (stratified sampling,
+    common practice); for circles only points with x^2 + y^2 <= tan^2 r count. Neighbour
+    lists as in :func:`covered_by_neighbours`.
+    """
+    n_side = int(np.sqrt(jitter.shape[0]) + 0.5)
+    out = np.empty(touched.size)
+    for t in prange(touched.size):
+        f = touched[t]
+        if shape[f] == 0:
+            half = np.tan(2.0 * np.arcsin(0.5 * size1[f]))
+            half_x, half_y, limit = half, half, half * half
+        else:
+            half_x, half_y, limit = size1[f], size2[f], np.inf
+        kept, total = 0.0, 0.0
+        for a in range(n_side):
+            for b in range(n_side):
+                s = a * n_side + b
+                x = (2.0 * (a + jitter[s, 0]) / n_side - 1.0) * half_x
+                y = (2.0 * (b + jitter[s, 1]) / n_side - 1.0) * half_y
+                rho2 = x * x + y * y
+                if rho2 > limit:
+                    continue
+                q = 1.0 + rho2
+                norm = 1.0 / np.sqrt(q)
+                w = norm / q
+                px = (centre[f, 0] + x * axis1[f, 0] + y * axis2[f, 0]) * norm
+                py = (centre[f, 1] + x * axis1[f, 1] + y * axis2[f, 1]) * norm
+                pz = (centre[f, 2] + x * axis1[f, 2] + y * axis2[f, 2]) * norm
+                total += w
+                if not _in_neighbour(px, py, pz, f, f_start, f_list, shape, centre, axis1,
+                                     axis2, size1, size2, v_start, v_list, h_shape, h_centre,
+                                     h_axis1, h_axis2, h_size1, h_size2):
+                    kept += w
+        out[t] = kept / total
+    return out

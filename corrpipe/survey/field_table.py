@@ -75,7 +75,7 @@ def _numeric(values, name: str, path: Path) -> np.ndarray:
 
 def read_field_table(path: str | os.PathLike, *, size_unit: str = "arcmin",
                      vetoes: FieldFootprint | None = None, depth_groups: int = 0,
-                     overlap_samples: int = 20_000) -> FieldFootprint:
+                     overlap_samples: int = 4096) -> FieldFootprint:
     """Read a field table and build its footprint.
 
     Parameters

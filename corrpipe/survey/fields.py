@@ -167,7 +167,7 @@ class FieldFootprint(Footprint):
     depth_class: np.ndarray | None = None
     vetoes: FieldFootprint | None = None
     source: str = "<field arrays>"
-    overlap_samples: int = 20_000
+    overlap_samples: int = 4096
     _geometry: dict = field(default_factory=dict, repr=False)
 
     def __post_init__(self):
@@ -265,15 +265,6 @@ class FieldFootprint(Footprint):
         return (grid.band, grid.n_ra, grid.key_stride, grid.keys, grid.starts, grid.fields,
                 self.shape, g["centre"], g["axis1"], g["axis2"], g["size1"], g["size2"])
 
-    def _covering_fields(self, vec: np.ndarray) -> np.ndarray:
-        """First field of the table containing each unit vector (vetoes ignored), -1 if none."""
-        return fk.owners_of_vectors(np.ascontiguousarray(vec), *self._kernel_args())
-
-    def _vetoed(self, vec: np.ndarray) -> np.ndarray:
-        if self.vetoes is None:
-            return np.zeros(vec.shape[0], dtype=bool)
-        return self.vetoes._covering_fields(vec) >= 0
-
     def owner(self, ra_deg, dec_deg) -> np.ndarray:
         """Index of the field each direction belongs to (first listed), -1 outside or vetoed."""
         ra, dec = _as_angles(ra_deg, dec_deg)
@@ -299,25 +290,46 @@ class FieldFootprint(Footprint):
     # --- overlaps and areas -----------------------------------------------------------
 
     @functools.cached_property
-    def _touched(self) -> np.ndarray:
-        """Fields that a field listed earlier, or a veto, may overlap (bounding caps meet)."""
+    def _neighbours(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """For each field, the fields listed earlier and the holes whose bounding caps meet
+        its own: CSR offsets and indices (fields, then holes)."""
         g = self._geometry
-        touched = np.zeros(self.n_fields, dtype=bool)
+        n = self.n_fields
         tree = cKDTree(g["centre"])
         reach = 2.0 * np.sin(np.minimum(2 * g["bound"].max(), np.pi) / 2)
-        for i, j in tree.query_pairs(reach, output_type="ndarray"):
-            if _caps_meet(g["centre"][i], g["bound"][i], g["centre"][j], g["bound"][j]):
-                touched[max(i, j)] = True
-        if self.vetoes is not None:
-            v = self.vetoes._geometry
-            reach = 2.0 * np.sin(min(g["bound"].max() + v["bound"].max(), np.pi) / 2)
-            hits = cKDTree(v["centre"]).query_ball_point(g["centre"], reach)
-            for i, js in enumerate(hits):
-                for j in js:
-                    if _caps_meet(g["centre"][i], g["bound"][i], v["centre"][j], v["bound"][j]):
-                        touched[i] = True
-                        break
-        return touched
+        pairs = tree.query_pairs(reach, output_type="ndarray")
+        early = _meeting(pairs[:, 1].copy(), g, pairs[:, 0].copy(), g)
+        later, first = np.maximum(early[0], early[1]), np.minimum(early[0], early[1])
+        f_start, f_list = _csr(later, first, n)
+        if self.vetoes is None:
+            return f_start, f_list, np.zeros(n + 1, dtype=np.int64), np.empty(0, np.int64)
+        v = self.vetoes._geometry
+        reach = 2.0 * np.sin(min(g["bound"].max() + v["bound"].max(), np.pi) / 2)
+        hits = cKDTree(v["centre"]).query_ball_point(g["centre"], reach)
+        sizes = np.fromiter((len(h) for h in hits), dtype=np.int64, count=n)
+        rows = np.repeat(np.arange(n, dtype=np.int64), sizes)
+        cols = np.fromiter((j for h in hits for j in h), dtype=np.int64, count=int(sizes.sum()))
+        rows, cols = _meeting(rows, g, cols, v)
+        v_start, v_list = _csr(rows, cols, n)
+        return f_start, f_list, v_start, v_list
+
+    @functools.cached_property
+    def _touched(self) -> np.ndarray:
+        """Fields that a field listed earlier, or a hole, may overlap (bounding caps meet)."""
+        f_start, _, v_start, _ = self._neighbours
+        return (np.diff(f_start) > 0) | (np.diff(v_start) > 0)
+
+    def _not_owned(self, vec: np.ndarray, which: np.ndarray) -> np.ndarray:
+        """True where a point drawn in field ``which`` lies in an earlier field or a hole."""
+        f_start, f_list, v_start, v_list = self._neighbours
+        g = self._geometry
+        holes = self.vetoes._geometry if self.vetoes is not None else _NO_HOLES
+        h_shape = self.vetoes.shape if self.vetoes is not None else np.empty(0, np.int64)
+        return fk.covered_by_neighbours(
+            np.ascontiguousarray(vec), np.ascontiguousarray(which, dtype=np.int64),
+            f_start, f_list, self.shape, g["centre"], g["axis1"], g["axis2"], g["size1"],
+            g["size2"], v_start, v_list, h_shape, holes["centre"], holes["axis1"],
+            holes["axis2"], holes["size1"], holes["size2"])
 
     def _draw_in_fields(self, which: np.ndarray, rng: np.random.Generator
                         ) -> tuple[np.ndarray, np.ndarray]:
@@ -336,22 +348,28 @@ class FieldFootprint(Footprint):
 
     @functools.cached_property
     def _owned_fraction(self) -> tuple[np.ndarray, np.ndarray]:
-        """Fraction of each field it owns, and its sampling error (0 for untouched fields)."""
+        """Fraction of each field it owns, and its sampling error (0 for untouched fields).
+
+        Touched fields are sampled on a jittered grid of about ``overlap_samples`` points
+        (:func:`corrpipe.survey.field_kernels.owned_fractions`); the error quoted is the
+        binomial one, an upper bound for stratified sampling.
+        """
         frac, err = np.ones(self.n_fields), np.zeros(self.n_fields)
-        touched = np.flatnonzero(self._touched)
-        rng = np.random.default_rng(7_193_001)
-        n_s = int(self.overlap_samples)
-        for chunk in np.array_split(touched, max(1, touched.size * n_s // 250_000 + 1)):
-            if chunk.size == 0:
-                continue
-            which = np.repeat(chunk, n_s)
-            vec, ok = self._draw_in_fields(which, rng)
-            mine = (self._covering_fields(vec) == which) & ~self._vetoed(vec)
-            kept = np.bincount(np.searchsorted(chunk, which[ok]), minlength=chunk.size)
-            good = np.bincount(np.searchsorted(chunk, which[ok & mine]), minlength=chunk.size)
-            f = good / np.maximum(kept, 1)
-            frac[chunk] = f
-            err[chunk] = np.sqrt(f * (1 - f) / np.maximum(kept, 1))
+        touched = np.flatnonzero(self._touched).astype(np.int64)
+        if touched.size == 0:
+            return frac, err
+        n_side = max(2, int(np.ceil(np.sqrt(self.overlap_samples))))
+        jitter = np.random.default_rng(7_193_001).random((n_side * n_side, 2))
+        f_start, f_list, v_start, v_list = self._neighbours
+        g = self._geometry
+        holes = self.vetoes._geometry if self.vetoes is not None else _NO_HOLES
+        h_shape = self.vetoes.shape if self.vetoes is not None else np.empty(0, np.int64)
+        f = fk.owned_fractions(touched, jitter, f_start, f_list, self.shape, g["centre"],
+                               g["axis1"], g["axis2"], g["size1"], g["size2"], v_start, v_list,
+                               h_shape, holes["centre"], holes["axis1"], holes["axis2"],
+                               holes["size1"], holes["size2"])
+        frac[touched] = f
+        err[touched] = np.sqrt(f * (1 - f) / n_side**2)
         return frac, err
 
     def owned_areas_sr(self) -> np.ndarray:
@@ -398,7 +416,7 @@ class FieldFootprint(Footprint):
             if np.any(check):
                 idx = np.flatnonzero(check)
                 sub = vec[idx]
-                ok[idx] = (self._covering_fields(sub) == which[idx]) & ~self._vetoed(sub)
+                ok[idx] = ~self._not_owned(sub, which[idx])
             out_vec.append(vec[ok])
             out_field.append(which[ok])
             have += int(ok.sum())
@@ -421,6 +439,24 @@ class FieldFootprint(Footprint):
         return ra, dec
 
 
-def _caps_meet(c1, r1, c2, r2) -> bool:
-    angle = 2.0 * np.arcsin(min(1.0, 0.5 * float(np.linalg.norm(c1 - c2))))
-    return angle <= r1 + r2 + 1e-12
+_NO_HOLES = {"centre": np.empty((0, 3)), "axis1": np.empty((0, 3)), "axis2": np.empty((0, 3)),
+             "size1": np.empty(0), "size2": np.empty(0)}
+"""Geometry of an empty set of holes."""
+
+
+def _meeting(rows, g_rows, cols, g_cols) -> tuple[np.ndarray, np.ndarray]:
+    """The (row, col) pairs whose bounding caps meet (angle <= sum of bounding radii)."""
+    if rows.size == 0:
+        return rows, cols
+    chord = np.linalg.norm(g_rows["centre"][rows] - g_cols["centre"][cols], axis=1)
+    angle = 2.0 * np.arcsin(np.minimum(1.0, 0.5 * chord))
+    meet = angle <= g_rows["bound"][rows] + g_cols["bound"][cols] + 1e-12
+    return rows[meet], cols[meet]
+
+
+def _csr(rows, cols, n) -> tuple[np.ndarray, np.ndarray]:
+    """CSR offsets (n + 1) and column lists sorted by row, then column."""
+    order = np.lexsort((cols, rows))
+    start = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(rows, minlength=n), out=start[1:])
+    return start, np.ascontiguousarray(cols[order], dtype=np.int64)

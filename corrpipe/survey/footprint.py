@@ -524,7 +524,7 @@ class FootprintSettings:
     field_depth_groups: int = setting(0, "without a depth_class column: group the fields into "
                                       "this many classes of similar 'depth' (quantiles of "
                                       "that column); 0 = one class", low=0)
-    field_overlap_samples: int = setting(20_000, "points drawn in each field that another "
+    field_overlap_samples: int = setting(4096, "points drawn in each field that another "
                                          "field or a hole touches, to measure its area",
                                          low=1000)
 

@@ -22,6 +22,7 @@ import numpy as np
 
 from corrpipe.errors import InputError
 from corrpipe.survey.readers import read_columns
+from corrpipe.survey.selection_kernels import draw_from_rows
 from corrpipe.survey.weights import RedshiftDensity, fkp_weights, shell_volumes
 
 __all__ = [
@@ -119,10 +120,8 @@ class TabulatedSelection:
         object.__setattr__(self, "z_edges", edges)
         object.__setattr__(self, "dndz", table)
         object.__setattr__(self, "_cdf", cdf)
-        # rows of the normalised cdf shifted by their class index: row k spans (k, k + 1]
         total = np.where(cdf[:, -1:] > 0, cdf[:, -1:], 1.0)
-        stacked = (cdf / total + np.arange(table.shape[0])[:, None]).ravel()
-        object.__setattr__(self, "_stacked_cdf", stacked)
+        object.__setattr__(self, "_row_cdf", np.ascontiguousarray(cdf / total))
 
     @property
     def n_classes(self) -> int:
@@ -164,13 +163,10 @@ class TabulatedSelection:
              ) -> tuple[np.ndarray, np.ndarray]:
         """Redshifts (uniform inside the drawn bin) and unit weights for the given classes."""
         self.check_classes(np.bincount(classes, minlength=self.n_classes) > 0)
-        n_bins = self.dndz.shape[1]
-        flat = self._stacked_cdf
-        target = classes + rng.random(classes.size)
-        bins = np.searchsorted(flat, target, side="right") - classes * n_bins
-        bins = np.clip(bins, 0, n_bins - 1)
-        lo, hi = self.z_edges[bins], self.z_edges[bins + 1]
-        return lo + (hi - lo) * rng.random(classes.size), np.ones(classes.size)
+        u = rng.random((2, classes.size))
+        z = draw_from_rows(np.ascontiguousarray(classes, dtype=np.int64), u[0], u[1],
+                           self._row_cdf, self.z_edges)
+        return z, np.ones(classes.size)
 
 
 def read_selection_table(path: str | os.PathLike) -> TabulatedSelection:
