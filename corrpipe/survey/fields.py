@@ -394,15 +394,18 @@ class FieldFootprint(Footprint):
 
     # --- sampling ---------------------------------------------------------------------
 
-    def sample_fields(self, n: int, rng: np.random.Generator, by_completeness: bool = True
-                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def sample_fields(self, n: int, rng: np.random.Generator, by_completeness: bool = True,
+                      only=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Draw ``n`` directions with density proportional to the owning field's completeness.
 
-        With ``by_completeness=False`` the density is uniform over the footprint instead.
+        With ``by_completeness=False`` the density is uniform over the footprint instead;
+        ``only`` (boolean, shape (n_fields,)) restricts the draw to those fields.
         Returns RA and Dec (degrees) and the owning field of each point.
         """
         weights = self._geometry["areas"] * (self.completeness_values if by_completeness
                                              else 1.0)
+        if only is not None:
+            weights = np.where(np.asarray(only, dtype=bool), weights, 0.0)
         prob = weights / weights.sum()
         touched = self._touched
         fields = np.arange(self.n_fields, dtype=np.int64)
