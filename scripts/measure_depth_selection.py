@@ -95,6 +95,7 @@ def main() -> int:
         g = make_randoms(fp, z, n_randoms=n_r, seed=2000 + m, progress=False)
         cls = fp.depth_class_of(ra, dec)
         c, _ = make_local_randoms(fp, ShuffledByClass(z, np.ones(z.size), cls, 3), n_r,
+                                  class_counts=np.bincount(cls[cls >= 0], minlength=3),
                                   seed=3000 + m, progress=False)
         t = field_selection_randoms(fp, cosmo, Z_MIN, Z_MAX, n_r, nz_of_class, seed=4000 + m)
         results["global"].append(multipoles_of(data, (g.ra, g.dec, g.z), binning, cosmo))

@@ -204,9 +204,12 @@ def _local_randoms(ctx: StageContext, footprint, data, seed):
         else:
             table = None
             selection = ShuffledByClass(data.z, data.weights, d_cls, n_classes)
+        # each class gets randoms in proportion to its own data: the surface density of a
+        # class follows its depth, not only its area
+        counts = np.bincount(d_cls[d_cls >= 0], minlength=n_classes)
         rcat, r_fields = rnd.make_local_randoms(footprint, selection, n_randoms,
-                                                n_sets=a.randoms.n_sets, seed=seed,
-                                                progress=ctx.show_progress)
+                                                n_sets=a.randoms.n_sets, class_counts=counts,
+                                                seed=seed, progress=ctx.show_progress)
         return rcat, r_fields, d_cls, _ClassSelection(n_classes, True, table)
     # one selection for the whole survey: global shuffle or smoothed n(z), drawn by class 0
     rcat = rnd.make_randoms(footprint, data.z, data.weights, n_randoms=n_randoms,

@@ -395,15 +395,19 @@ class FieldFootprint(Footprint):
     # --- sampling ---------------------------------------------------------------------
 
     def sample_fields(self, n: int, rng: np.random.Generator, by_completeness: bool = True,
-                      only=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                      only=None, density=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Draw ``n`` directions with density proportional to the owning field's completeness.
 
         With ``by_completeness=False`` the density is uniform over the footprint instead;
-        ``only`` (boolean, shape (n_fields,)) restricts the draw to those fields.
+        ``only`` (boolean, shape (n_fields,)) restricts the draw to those fields; ``density``
+        (shape (n_fields,), >= 0) multiplies each field's density by a factor of its own
+        (e.g. the number of objects per unit effective area of its depth class).
         Returns RA and Dec (degrees) and the owning field of each point.
         """
         weights = self._geometry["areas"] * (self.completeness_values if by_completeness
                                              else 1.0)
+        if density is not None:
+            weights = weights * np.asarray(density, dtype=np.float64)
         if only is not None:
             weights = np.where(np.asarray(only, dtype=bool), weights, 0.0)
         prob = weights / weights.sum()

@@ -206,7 +206,7 @@ def make_randoms(footprint: Footprint, data_z, data_weights=None, *,
 
 
 def make_local_randoms(footprint, selection, n_randoms: int, *, n_sets: int = 1,
-                       seed: int | np.random.Generator | None = None,
+                       class_counts=None, seed: int | np.random.Generator | None = None,
                        progress: bool = True) -> tuple[RandomCatalogue, np.ndarray]:
     """Randoms in a field footprint whose redshifts follow each depth class's own selection.
 
@@ -222,6 +222,11 @@ def make_local_randoms(footprint, selection, n_randoms: int, *, n_sets: int = 1,
         Number of randoms.
     n_sets : int
         Independent sets labelled in ``subset`` (split-random RR).
+    class_counts : array_like, shape (n_classes,), optional
+        Objects observed (or expected) in each depth class. Given, each class receives
+        randoms in proportion to it, so the angular random density follows each class's own
+        surface density (deeper classes hold more objects per area); without it every class
+        has the same density per unit effective area.
     seed : int or numpy.random.Generator
         Required; the same seed gives the same catalogue.
     progress : bool
@@ -246,8 +251,19 @@ def make_local_randoms(footprint, selection, n_randoms: int, *, n_sets: int = 1,
     if not (isinstance(n_sets, (int, np.integer)) and 1 <= n_sets <= n_randoms):
         raise ConfigError(f"randoms.n_sets = {n_sets} must be an integer in [1, n_randoms]")
     weight = footprint.owned_areas_sr() * footprint.completeness_values
-    used = np.bincount(footprint.depth_class, weights=weight) > 0
-    selection.check_classes(used)
+    class_area = np.bincount(footprint.depth_class, weights=weight)
+    density = None
+    if class_counts is not None:
+        counts = np.zeros(class_area.size)
+        given = np.asarray(class_counts, dtype=np.float64)[:class_area.size]
+        counts[:given.size] = given
+        if np.any(~np.isfinite(counts)) or np.any(counts < 0) or not counts.sum() > 0:
+            raise InputError("class_counts must be finite, >= 0 and not all 0")
+        per_area = np.divide(counts, class_area, out=np.zeros_like(counts),
+                             where=class_area > 0)
+        density = per_area[footprint.depth_class]
+        class_area = class_area * (per_area > 0)
+    selection.check_classes(class_area > 0)
     ra, dec, z, w = (np.empty(n_randoms) for _ in range(4))
     fields = np.empty(n_randoms, dtype=np.int64)
     with tqdm(total=n_randoms, desc="randoms", unit="pt", disable=not show_bars(progress)) as bar:
@@ -255,7 +271,8 @@ def make_local_randoms(footprint, selection, n_randoms: int, *, n_sets: int = 1,
         while done < n_randoms:
             m = min(_CHUNK, n_randoms - done)
             part = slice(done, done + m)
-            ra[part], dec[part], fields[part] = footprint.sample_fields(m, rng)
+            ra[part], dec[part], fields[part] = footprint.sample_fields(m, rng,
+                                                                       density=density)
             z[part], w[part] = selection.draw(footprint.depth_class[fields[part]], rng)
             done += m
             bar.update(m)

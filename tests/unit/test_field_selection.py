@@ -157,3 +157,24 @@ def test_jackknife_regions_never_split_a_field():
     assert area.min() > 0.3 * area.mean()
     with pytest.raises(InputError, match="outside every field"):
         regions.assign([180.0], [-60.0])
+
+
+def test_class_counts_set_each_class_surface_density():
+    # with class_counts, a class's share of the randoms is its share of the objects (the
+    # random density must follow the galaxies' surface density, common practice); multinomial
+    # chi-square over the classes (scipy.stats.chi2) and per-field counts within a class
+    fp = field_pattern(240, 13)
+    counts = np.array([1000.0, 3000.0, 500.0])
+    cat, fields = make_local_randoms(fp, class_table(3), 90_000, class_counts=counts, seed=2,
+                                     progress=False)
+    got = np.bincount(fp.depth_class[fields], minlength=3)
+    expect = counts / counts.sum() * len(cat)
+    chi2 = np.sum((got - expect) ** 2 / expect)
+    assert stats.chi2.sf(chi2, 2) > 1e-3, (got, expect)
+    in_class = fp.depth_class == 1
+    area = (fp.owned_areas_sr() * fp.completeness_values)[in_class]
+    per_field = np.bincount(fields, minlength=fp.n_fields)[in_class]
+    exp_f = area / area.sum() * per_field.sum()
+    live = exp_f > 0
+    chi2 = np.sum((per_field[live] - exp_f[live]) ** 2 / exp_f[live])
+    assert stats.chi2.sf(chi2, live.sum() - 1) > 1e-3
