@@ -18,7 +18,7 @@ from corrpipe.survey.randoms import RandomsSettings
 from corrpipe.survey.regions import RegionSettings
 from corrpipe.survey.weights import WeightsSettings
 
-__all__ = ["STAGE", "TABLES"]
+__all__ = ["STAGE", "TABLES", "check_analysis"]
 
 log = logging.getLogger(__name__)
 
@@ -30,11 +30,14 @@ def _box_uses_randoms(a) -> bool:
 def compute(ctx: StageContext):
     """Randoms, n(z), FKP weights and jackknife regions (``[footprint]``, ``[randoms]``,
     ``[weights]`` and the region keys of ``[covariance]``)."""
+    from corrpipe.cosmology import sky_to_cartesian
     from corrpipe.survey import randoms as rnd
     from corrpipe.survey import regions as reg
     from corrpipe.survey.catalog import load_sky_catalogue
-    from corrpipe.cosmology import sky_to_cartesian
+    from corrpipe.survey.field_regions import field_regions
+    from corrpipe.survey.field_table import field_footprint_from_settings
     from corrpipe.survey.footprint import check_data_inside, footprint_from_settings
+    from corrpipe.survey.selection import class_densities, local_fkp_weights
     from corrpipe.survey.weights import combine_fkp, redshift_density, redshift_edges
 
     a = ctx.analysis
@@ -43,6 +46,7 @@ def compute(ctx: StageContext):
         data = read_catalogue(h5["data"])
     seed = a.randoms.seed if a.randoms.seed >= 0 else ctx.seed("randoms")
     info: dict[str, Any] = {"seed": int(seed)}
+    classes = None
 
     if data.is_box:
         L = float(data.box_size)
@@ -76,6 +80,16 @@ def compute(ctx: StageContext):
             ra_r, dec_r, z_r, rw = rcat.ra, rcat.dec, rcat.z, rcat.weights
             subset = np.arange(rcat.size, dtype=np.int64) % a.randoms.n_sets
             area_sr = float(_coverage_area(ra_r, dec_r, a.randoms.coverage_nside))
+        elif a.footprint.kind == "fields":
+            footprint = field_footprint_from_settings(a.footprint)
+            frac = check_data_inside(footprint, data.ra, data.dec, data.weights,
+                                     warn_above=a.randoms.outside_warn_fraction)
+            local = _local_randoms(ctx, footprint, data, seed)
+            rcat, r_fields, d_cls, classes = local
+            ra_r, dec_r, z_r, rw, subset = rcat.ra, rcat.dec, rcat.z, rcat.weights, rcat.subset
+            area_sr = float(footprint.effective_area_sr())
+            info.update(n_fields=footprint.n_fields, n_depth_classes=int(classes.n_classes),
+                        area_error_sr=footprint.area_error_sr())
         else:
             footprint = footprint_from_settings(a.footprint, data.ra, data.dec)
             frac = check_data_inside(footprint, data.ra, data.dec, data.weights,
@@ -89,11 +103,22 @@ def compute(ctx: StageContext):
             ra_r, dec_r, z_r, rw, subset = rcat.ra, rcat.dec, rcat.z, rcat.weights, rcat.subset
             area_sr = float(footprint.effective_area_sr())
         info.update(kind="sky", outside_fraction=float(frac), area_sr=area_sr,
-                    area_deg2=area_sr * (180 / np.pi) ** 2, n_randoms=int(len(rw)))
+                    area_deg2=area_sr * (180 / np.pi) ** 2, n_randoms=len(rw))
         z_lo = a.catalogue.z_min if a.catalogue.z_min > 0 else None
         edges = redshift_edges(data.z, a.weights.nz_bin_width, z_lo, a.catalogue.z_max)
         nz = redshift_density(data.z, data.weights, edges, area_sr, cosmo)
-        if a.weights.fkp:
+        if classes is not None:
+            nz_classes = class_densities(data.z, data.weights, d_cls,
+                                         footprint.class_areas_sr(), edges, cosmo,
+                                         classes.table)
+        if a.weights.fkp and classes is not None and classes.local:
+            # FKP weights from the n(z) of each object's own depth class
+            r_cls = footprint.depth_class[r_fields]
+            dw = local_fkp_weights(data.weights, data.z, d_cls, nz_classes, nz,
+                                   a.weights.fkp_p0, a.weights.nz_interpolation)
+            rw = local_fkp_weights(rw, z_r, r_cls, nz_classes, nz, a.weights.fkp_p0,
+                                   a.weights.nz_interpolation)
+        elif a.weights.fkp:
             dw = combine_fkp(data.weights, data.z, nz, a.weights.fkp_p0,
                              a.weights.nz_interpolation)
             rw = combine_fkp(rw, z_r, nz, a.weights.fkp_p0, a.weights.nz_interpolation)
@@ -105,14 +130,20 @@ def compute(ctx: StageContext):
         if scheme == "cubes":
             raise ConfigError("[covariance] regions = 'cubes' is for periodic boxes; use 'kmeans' "
                               "or 'healpix' for a survey")
-        if scheme == "kmeans":
+        if scheme == "fields":
+            regions = field_regions(footprint, a.covariance.n_regions, ctx.seed("regions"),
+                                    n_sample=a.covariance.kmeans_sample)
+            d_reg = regions.assign(data.ra, data.dec)
+            r_reg = regions.of_fields(r_fields)
+        elif scheme == "kmeans":
             regions = reg.kmeans_regions(ra_r, dec_r, a.covariance.n_regions, ctx.seed("regions"),
                                          n_sample=a.covariance.kmeans_sample)
         else:
             regions = reg.healpix_regions(ra_r, dec_r, a.covariance.n_regions,
                                           nside=a.covariance.region_nside)
-        d_reg = regions.assign(data.ra, data.dec)
-        r_reg = regions.assign(ra_r, dec_r)
+        if scheme != "fields":
+            d_reg = regions.assign(data.ra, data.dec)
+            r_reg = regions.assign(ra_r, dec_r)
         n_regions = regions.n_regions
         reg.check_regions(n_regions, data=d_reg, randoms=r_reg)
         # effective redshift: pair-weighted mean, approximated by sum w^2 z / sum w^2
@@ -133,10 +164,77 @@ def compute(ctx: StageContext):
                 write_arrays(r, {"ra": ra_r, "dec": dec_r, "z": z_r})
         if nz is not None:
             nz.to_hdf5_group(h5.create_group("nz"))
+        if classes is not None:
+            nz_classes.to_hdf5_group(h5.create_group("nz_classes"))
+            write_arrays(g, {"depth_class": d_cls})
+            write_arrays(h5["randoms"], {"field": r_fields,
+                                          "depth_class": footprint.depth_class[r_fields]})
         for k, v in info.items():
             h5.attrs[k] = v
 
     return fill
+
+
+@dataclasses.dataclass(frozen=True)
+class _ClassSelection:
+    """How the radial selection of a field footprint was set."""
+
+    n_classes: int
+    local: bool            # randoms follow each depth class's own selection
+    table: Any = None      # TabulatedSelection when read from randoms.selection_file
+
+
+def _local_randoms(ctx: StageContext, footprint, data, seed):
+    """Randoms of a field footprint: per-class selection, or the global one."""
+    from corrpipe.survey import randoms as rnd
+    from corrpipe.survey.selection import ShuffledByClass, read_selection_table
+
+    a = ctx.analysis
+    mode = a.randoms.redshifts
+    d_cls = footprint.depth_class_of(data.ra, data.dec)
+    n_classes = int(footprint.depth_class.max()) + 1
+    n_randoms = int(round(a.randoms.size_factor * data.size))
+    rnd.check_randoms_size(data.size, n_randoms, "the requested random catalogue")
+    if mode in ("shuffle_by_class", "table"):
+        if mode == "table":
+            z_hi = a.catalogue.z_max
+            table = read_selection_table(a.randoms.selection_file).restricted(
+                a.catalogue.z_min, z_hi)
+            selection = table
+        else:
+            table = None
+            selection = ShuffledByClass(data.z, data.weights, d_cls, n_classes)
+        # each class gets randoms in proportion to its own data: the surface density of a
+        # class follows its depth, not only its area
+        counts = np.bincount(d_cls[d_cls >= 0], minlength=n_classes)
+        rcat, r_fields = rnd.make_local_randoms(footprint, selection, n_randoms,
+                                                n_sets=a.randoms.n_sets, class_counts=counts,
+                                                seed=seed, progress=ctx.show_progress)
+        return rcat, r_fields, d_cls, _ClassSelection(n_classes, True, table)
+    # one selection for the whole survey: global shuffle or smoothed n(z), drawn by class 0
+    rcat = rnd.make_randoms(footprint, data.z, data.weights, n_randoms=n_randoms,
+                            redshifts=mode, smoothing=a.randoms.smoothing,
+                            n_sets=a.randoms.n_sets, seed=seed, progress=ctx.show_progress,
+                            z_min=a.catalogue.z_min, z_max=a.catalogue.z_max)
+    return rcat, footprint.owner(rcat.ra, rcat.dec), d_cls, _ClassSelection(n_classes, False)
+
+
+def check_analysis(analysis: Any, where: str) -> None:
+    """Checks across [footprint], [randoms] and [covariance], run when the config is loaded."""
+    fp, rnd_s, cov = analysis.footprint, analysis.randoms, analysis.covariance
+    label = f"{where}: analysis '{analysis.name}'"
+    if rnd_s.redshifts in ("shuffle_by_class", "table") and fp.kind != "fields":
+        raise ConfigError(f"{label}: randoms.redshifts = '{rnd_s.redshifts}' needs depth "
+                          "classes, i.e. footprint.kind = 'fields' with a field table")
+    if rnd_s.redshifts == "table" and not rnd_s.selection_file:
+        raise ConfigError(f"{label}: randoms.redshifts = 'table' needs randoms.selection_file "
+                          "(columns depth_class, z_min, z_max, dndz)")
+    if cov.regions == "fields" and fp.kind != "fields":
+        raise ConfigError(f"{label}: covariance.regions = 'fields' groups whole fields and "
+                          "needs footprint.kind = 'fields'")
+    if fp.kind == "fields" and rnd_s.file:
+        raise ConfigError(f"{label}: footprint.kind = 'fields' draws its own randoms; leave "
+                          "randoms.file empty")
 
 
 def _region_keys(a) -> dict:
@@ -154,5 +252,7 @@ def _coverage_area(ra, dec, nside: int) -> float:
 TABLES = {"footprint": FootprintSettings, "randoms": RandomsSettings, "weights": WeightsSettings}
 
 STAGE = Stage("randoms", ("footprint", "randoms", "weights"), ("load",), compute,
-              inputs=lambda a: [a.randoms.file] if a.randoms.file else [],
+              inputs=lambda a: [p for p in (a.randoms.file, a.randoms.selection_file,
+                                            a.footprint.fields_file,
+                                            a.footprint.field_vetoes_file) if p],
               extra=lambda a: {"counts.box_rr": a.counts.box_rr, **_region_keys(a)})

@@ -499,7 +499,7 @@ class FootprintSettings:
     """Config section ``[footprint]``: where the survey looked."""
 
     kind: str = setting("boxes", "how the footprint is given",
-                        choices=("boxes", "healpix", "from_data"))
+                        choices=("boxes", "healpix", "from_data", "fields"))
     boxes: tuple[tuple[float, float, float, float], ...] = setting((), "RA/Dec boxes [ra_min, ra_max, dec_min, dec_max] in degrees; "
                                "ra_min > ra_max wraps through RA = 0", unit="deg")
     vetoes: tuple[tuple[float, float, float, float], ...] = setting((), "boxes removed from the footprint, same layout as 'boxes'",
@@ -514,11 +514,32 @@ class FootprintSettings:
                               low=1, high=8192)
     data_min_count: int = setting(1, "objects a pixel needs to count as observed",
                                   low=1)
+    fields_file: str = setting("", "table of fields (FITS/ECSV/CSV: ra, dec, shape, side or "
+                               "side_a/side_b, position_angle, radius, completeness, "
+                               "depth_class) for kind = 'fields'", path=True, neutral_default=True)
+    field_size_unit: str = setting("arcmin", "unit of the field sides and radii",
+                                   choices=("deg", "arcmin", "arcsec"), neutral_default=True)
+    field_vetoes_file: str = setting("", "table of holes (same columns) removed from the "
+                                     "fields, e.g. bright-star masks", path=True, neutral_default=True)
+    field_depth_groups: int = setting(0, "without a depth_class column: group the fields into "
+                                      "this many classes of similar 'depth' (quantiles of "
+                                      "that column); 0 = one class", low=0, neutral_default=True)
+    field_overlap_samples: int = setting(4096, "points drawn in each field that another "
+                                         "field or a hole touches, to measure its area",
+                                         low=1000, neutral_default=True)
 
     def validate(self) -> None:
         """Check the boxes when the config is loaded, before any stage runs."""
         _boxes_from_config(self.boxes, "boxes")
         _boxes_from_config(self.vetoes, "vetoes")
+        if self.kind == "fields":
+            if not self.fields_file:
+                raise ConfigError("footprint.kind = 'fields' needs footprint.fields_file (a "
+                                  "table of fields)")
+            if self.vetoes:
+                raise ConfigError("footprint.vetoes (boxes) cannot be combined with kind = "
+                                  "'fields'; give the holes as a field table in "
+                                  "footprint.field_vetoes_file")
 
 
 def _boxes_from_config(entries: Sequence, key: str) -> tuple:
@@ -560,6 +581,9 @@ def footprint_from_settings(settings: FootprintSettings, data_ra=None,
         if settings.vetoes:
             return _VetoedFootprint(fp, _boxes_from_config(settings.vetoes, "vetoes"))
         return fp
+    if settings.kind == "fields":
+        raise ConfigError("footprint.kind = 'fields' is built by "
+                          "corrpipe.survey.field_table.field_footprint_from_settings")
     if settings.kind == "from_data":
         if data_ra is None or data_dec is None:
             raise ConfigError("footprint.kind = 'from_data' needs the data RA/Dec; it cannot "
@@ -567,7 +591,7 @@ def footprint_from_settings(settings: FootprintSettings, data_ra=None,
         return footprint_from_data(data_ra, data_dec, settings.data_nside,
                                    settings.data_min_count)
     raise ConfigError(f"footprint.kind = {settings.kind!r} is not one of "
-                      "'boxes', 'healpix', 'from_data'")
+                      "'boxes', 'healpix', 'from_data', 'fields'")
 
 
 @dataclasses.dataclass(frozen=True, eq=False)

@@ -16,16 +16,17 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from corrpipe.errors import ConfigError, InputError
-from corrpipe.survey.footprint import (Footprint, FootprintMismatchWarning, footprint_from_data)
 from corrpipe.settings import setting
+from corrpipe.survey.footprint import Footprint, FootprintMismatchWarning, footprint_from_data
 from corrpipe.terminal import show_bars
 
 __all__ = [
     "RandomCatalogue",
     "RandomsSettings",
-    "make_randoms",
     "box_randoms",
     "check_randoms_size",
+    "make_local_randoms",
+    "make_randoms",
     "outside_random_coverage",
 ]
 
@@ -73,7 +74,7 @@ class RandomCatalogue:
     def __len__(self) -> int:
         return int(self.ra.size)
 
-    def select_set(self, k: int) -> "RandomCatalogue":
+    def select_set(self, k: int) -> RandomCatalogue:
         """The k-th independent set alone (for split-random RR)."""
         if not 0 <= k < self.n_sets:
             raise InputError(f"random set {k} does not exist; there are {self.n_sets}")
@@ -95,7 +96,7 @@ class RandomCatalogue:
         group.attrs["seed"] = int(self.seed)
 
     @classmethod
-    def from_hdf5_group(cls, group) -> "RandomCatalogue":
+    def from_hdf5_group(cls, group) -> RandomCatalogue:
         """Read a catalogue written by :meth:`to_hdf5_group`."""
         arrays = [np.asarray(group[n][()]) for n in ("ra", "dec", "z", "weights", "subset")]
         return cls(*arrays, n_sets=int(group.attrs["n_sets"]), seed=int(group.attrs["seed"]))
@@ -204,6 +205,82 @@ def make_randoms(footprint: Footprint, data_z, data_weights=None, *,
     return RandomCatalogue(ra, dec, z, w, subset, int(n_sets), used_seed)
 
 
+def make_local_randoms(footprint, selection, n_randoms: int, *, n_sets: int = 1,
+                       class_counts=None, seed: int | np.random.Generator | None = None,
+                       progress: bool = True) -> tuple[RandomCatalogue, np.ndarray]:
+    """Randoms in a field footprint whose redshifts follow each depth class's own selection.
+
+    Parameters
+    ----------
+    footprint : corrpipe.survey.fields.FieldFootprint
+        Fields with completeness and depth classes; the random density in a field is
+        proportional to its completeness.
+    selection : ShuffledByClass or TabulatedSelection
+        Anything with ``draw(classes, rng) -> (z, weights)`` and ``check_classes(used)``
+        (see :mod:`corrpipe.survey.selection`).
+    n_randoms : int
+        Number of randoms.
+    n_sets : int
+        Independent sets labelled in ``subset`` (split-random RR).
+    class_counts : array_like, shape (n_classes,), optional
+        Objects observed (or expected) in each depth class. Given, each class receives
+        randoms in proportion to it, so the angular random density follows each class's own
+        surface density (deeper classes hold more objects per area); without it every class
+        has the same density per unit effective area.
+    seed : int or numpy.random.Generator
+        Required; the same seed gives the same catalogue.
+    progress : bool
+        Show a progress bar.
+
+    Returns
+    -------
+    RandomCatalogue
+        The randoms.
+    ndarray of int64, shape (n_randoms,)
+        Field each random lies in (its depth class is ``footprint.depth_class[field]``).
+
+    Notes
+    -----
+    The output arrays are allocated once and filled chunk by chunk, so the peak memory is the
+    catalogue itself plus one chunk.
+    """
+    rng = _generator(seed)
+    n_randoms = int(n_randoms)
+    if n_randoms < 1:
+        raise ConfigError(f"the random catalogue needs at least one point; got {n_randoms}")
+    if not (isinstance(n_sets, (int, np.integer)) and 1 <= n_sets <= n_randoms):
+        raise ConfigError(f"randoms.n_sets = {n_sets} must be an integer in [1, n_randoms]")
+    weight = footprint.owned_areas_sr() * footprint.completeness_values
+    class_area = np.bincount(footprint.depth_class, weights=weight)
+    density = None
+    if class_counts is not None:
+        counts = np.zeros(class_area.size)
+        given = np.asarray(class_counts, dtype=np.float64)[:class_area.size]
+        counts[:given.size] = given
+        if np.any(~np.isfinite(counts)) or np.any(counts < 0) or not counts.sum() > 0:
+            raise InputError("class_counts must be finite, >= 0 and not all 0")
+        per_area = np.divide(counts, class_area, out=np.zeros_like(counts),
+                             where=class_area > 0)
+        density = per_area[footprint.depth_class]
+        class_area = class_area * (per_area > 0)
+    selection.check_classes(class_area > 0)
+    ra, dec, z, w = (np.empty(n_randoms) for _ in range(4))
+    fields = np.empty(n_randoms, dtype=np.int64)
+    with tqdm(total=n_randoms, desc="randoms", unit="pt", disable=not show_bars(progress)) as bar:
+        done = 0
+        while done < n_randoms:
+            m = min(_CHUNK, n_randoms - done)
+            part = slice(done, done + m)
+            ra[part], dec[part], fields[part] = footprint.sample_fields(m, rng,
+                                                                       density=density)
+            z[part], w[part] = selection.draw(footprint.depth_class[fields[part]], rng)
+            done += m
+            bar.update(m)
+    subset = np.arange(n_randoms, dtype=np.int64) % n_sets
+    used_seed = int(seed) if isinstance(seed, (int, np.integer)) else -1
+    return RandomCatalogue(ra, dec, z, w, subset, int(n_sets), used_seed), fields
+
+
 def box_randoms(n: int, box_size: float, seed) -> np.ndarray:
     """Uniform points in a cubic box, shape (n, 3), Mpc/h (``box_size`` in Mpc/h)."""
     if not box_size > 0:
@@ -235,8 +312,12 @@ class RandomsSettings:
     size_factor: float = setting(20.0, "randoms per data object", low=1.0)
     n_sets: int = setting(1, "independent random sets for split-random RR "
                              "(Keihänen et al. 2019); 1 = one catalogue", low=1)
-    redshifts: str = setting("shuffle", "random redshifts drawn from the data (with weights) "
-                             "or from a smoothed n(z)", choices=("shuffle", "smooth"))
+    redshifts: str = setting("shuffle", "random redshifts drawn from the data (with weights), "
+                             "from a smoothed n(z), from the data of the same depth class "
+                             "(field footprints), or from a per-class dN/dz table",
+                             choices=("shuffle", "smooth", "shuffle_by_class", "table"))
+    selection_file: str = setting("", "dN/dz table per depth class (columns depth_class, "
+                                  "z_min, z_max, dndz) for redshifts = 'table'", path=True, neutral_default=True)
     smoothing: float = setting(0.01, "Gaussian kernel width of the smoothed n(z)",
                                unit="redshift", low=0.0, low_open=True, high=0.5)
     seed: int = setting(-1, "random seed; -1 derives it from run.seed", low=-1)

@@ -213,8 +213,9 @@ def check_regions(n_regions: int, **labels) -> None:
 class RegionSettings:
     """How jackknife regions are made (part of the ``[covariance]`` section)."""
 
-    regions: str = setting("kmeans", "jackknife region scheme (sub-cubes for periodic boxes)",
-                           choices=("kmeans", "healpix", "cubes"))
+    regions: str = setting("kmeans", "jackknife region scheme (sub-cubes for periodic boxes; "
+                           "whole fields grouped for field footprints)",
+                           choices=("kmeans", "healpix", "cubes", "fields"))
     n_regions: int = setting(100, "number of jackknife regions (sky schemes)", low=2)
     cubes_per_side: int = setting(4, "sub-cubes per box side (cubes scheme)", low=2)
     region_nside: int = setting(16, "HEALPix nside of the grouping pixels", low=1, high=1024)
