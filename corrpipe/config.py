@@ -36,7 +36,7 @@ from pathlib import Path
 from typing import Any, Mapping
 
 from corrpipe.errors import ConfigError
-from corrpipe.settings import fingerprint_values, setting, setting_info
+from corrpipe.settings import fingerprint_values, setting, setting_info, to_plain
 
 try:  # Python >= 3.11
     import tomllib
@@ -321,9 +321,9 @@ def config_reference() -> str:
                 continue
             info = setting_info(f)
             if f.default is not dataclasses.MISSING:
-                default = _toml_value(_to_plain(f.default))
+                default = _toml_value(to_plain(f.default))
             elif f.default_factory is not dataclasses.MISSING:
-                default = _toml_value(_to_plain(f.default_factory()))
+                default = _toml_value(to_plain(f.default_factory()))
             else:
                 default = "(required)"
             extra = []
@@ -487,15 +487,6 @@ def _resolve_paths(value: Any, base_dir: Path) -> Any:
         p = Path(value).expanduser()
         return str(p if p.is_absolute() else (base_dir / p))
     return value
-
-
-def _to_plain(obj: Any) -> Any:
-    """Convert tuples/mappings to JSON-friendly lists/dicts (for fingerprints and printing)."""
-    if isinstance(obj, Mapping):
-        return {str(k): _to_plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_to_plain(v) for v in obj]
-    return obj
 
 
 def _cross_checks(config: RunConfig, where: str) -> None:

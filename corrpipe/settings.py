@@ -9,9 +9,9 @@ unit, doc and range live in exactly one place.
 from __future__ import annotations
 
 import dataclasses
-from typing import Any, Sequence
+from typing import Any, Mapping, Sequence
 
-__all__ = ["setting", "setting_info", "fingerprint_values"]
+__all__ = ["setting", "setting_info", "fingerprint_values", "to_plain"]
 
 
 def setting(
@@ -89,15 +89,16 @@ def fingerprint_values(settings: Any) -> dict:
         if f.metadata.get("neutral_default") and f.default is not dataclasses.MISSING \
                 and value == f.default:
             continue
-        out[f.name] = _plain(value)
+        out[f.name] = to_plain(value)
     return out
 
 
-def _plain(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
+def to_plain(obj: Any) -> Any:
+    """Tuples and mappings (and nested settings dataclasses) as JSON-friendly lists/dicts."""
+    if isinstance(obj, Mapping):
+        return {str(k): to_plain(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
+        return [to_plain(v) for v in obj]
     if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
-        return _plain(dataclasses.asdict(obj))
+        return to_plain(dataclasses.asdict(obj))
     return obj
