@@ -1,0 +1,213 @@
+"""Benchmark of the pair counts a large emission-line survey needs, scaled down, with the
+extrapolation to full size.
+
+Scenario (invented for this benchmark): the "Veyra Deep Line Survey", 10^6 galaxies and
+2x10^7 randoms spread uniformly in comoving volume over a sector of 1576 deg^2 (RA span
+0.70 rad, |Dec| < 0.35 rad) between comoving distances 2300 and 3200 Mpc/h; mean density
+3.0e-4 (h/Mpc)^3 for the galaxies. 100 jackknife regions on a 10 x 10 grid of equal area in
+(RA, sin Dec). Bins: (s, |mu|), 32 linear s bins to 160 Mpc/h x 100 mu bins, midpoint line of
+sight, invented weights uniform in [0.8, 1.2]. The galaxies are unclustered (uniform), which
+understates DD by the clustering excess; DD is a small part of the cost.
+
+Counts, each in one process on the same points:
+
+- DD with regions (auto-count of the galaxies);
+- DR with regions, and the same DR without regions (their time ratio is the region cost);
+- RR from split randoms (Keihänen et al. 2019, A&A 631, A73): M = 20 random sets of the data
+  size, pairs only within each set, with regions.
+
+Scaling: the sector's area (hence every catalogue size) is divided by ``--scale`` at fixed
+density, so the per-pair work is the same as at full size. The number of pairs per object
+depends on the geometry (pairs lost across the sector's edges), so the full-size pair count of
+each count is extrapolated as ``pairs_scaled * (N1_full / N1_scaled) * (f_full / f_scaled)``
+with ``f`` the mean fraction of a sphere of radius s_max around a point of the sector that lies
+inside the sector (Monte Carlo, printed); full-size time = full-size pairs / measured pairs/s.
+
+Peak memory: resident-set high-water mark from ``/proc/self/status`` (VmHWM, reset with
+``/proc/self/clear_refs`` before each count; Linux only), minus the resident size before the
+count, which already holds the inputs. It is compared with inputs + result histograms.
+
+Usage: ``python scripts/bench_survey_counts.py [--scale 20] [--repeats 2] [--quick]``.
+Not part of the test suite.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import time
+
+import numba
+import numpy as np
+
+from corrpipe.paircount import Binning, count_pairs, split_random_rr
+
+CHI_MIN, CHI_MAX = 2300.0, 3200.0      # Mpc/h
+RA_SPAN, SIN_DEC = 0.70, np.sin(0.35)  # full-size sector
+N_DATA_FULL, N_RANDOM_FULL = 1_000_000, 20_000_000
+N_SIDE_REGIONS = 10                    # 10 x 10 = 100 regions
+S_MAX, N_S, N_MU = 160.0, 32, 100
+N_SPLIT = 20                           # random sets for RR (N_random / N_data)
+
+
+def sector(scale: float) -> tuple:
+    """RA span (rad) and sin(Dec) half-range of the sector with 1/scale of the full area."""
+    shrink = 1.0 / np.sqrt(scale)
+    return RA_SPAN * shrink, SIN_DEC * shrink
+
+
+def draw_points(n: int, scale: float, rng: np.random.Generator):
+    """Points uniform in comoving volume in the sector; their region labels (int64)."""
+    ra_span, sin_dec = sector(scale)
+    ra = rng.uniform(0.0, ra_span, n)
+    sdec = rng.uniform(-sin_dec, sin_dec, n)
+    chi = np.cbrt(rng.uniform(CHI_MIN**3, CHI_MAX**3, n))
+    cdec = np.sqrt(1.0 - sdec * sdec)
+    pos = np.column_stack([chi * cdec * np.cos(ra), chi * cdec * np.sin(ra), chi * sdec])
+    i_ra = np.minimum((ra / ra_span * N_SIDE_REGIONS).astype(np.int64), N_SIDE_REGIONS - 1)
+    i_dec = np.minimum(((sdec + sin_dec) / (2 * sin_dec) * N_SIDE_REGIONS).astype(np.int64),
+                       N_SIDE_REGIONS - 1)
+    return pos, rng.uniform(0.8, 1.2, n), i_ra * N_SIDE_REGIONS + i_dec
+
+
+def inside_fraction(scale: float, rng: np.random.Generator, n_centres: int = 20000,
+                    n_offsets: int = 64) -> float:
+    """Mean fraction of a sphere of radius S_MAX around a sector point that is in the sector."""
+    ra_span, sin_dec = sector(scale)
+    centres, _, _ = draw_points(n_centres, scale, rng)
+    u = rng.normal(size=(n_offsets, 3))
+    u *= (S_MAX * np.cbrt(rng.uniform(0, 1, n_offsets)) / np.linalg.norm(u, axis=1))[:, None]
+    p = centres[:, None, :] + u[None, :, :]
+    chi = np.linalg.norm(p, axis=2)
+    ra = np.arctan2(p[..., 1], p[..., 0])
+    sdec = p[..., 2] / chi
+    inside = (chi >= CHI_MIN) & (chi < CHI_MAX) & (ra >= 0) & (ra < ra_span) & (np.abs(sdec) < sin_dec)
+    return float(inside.mean())
+
+
+def _rss(field: str) -> int:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(field):
+                return int(line.split()[1]) * 1024
+    return 0
+
+
+def measured(fn):
+    """Run ``fn`` once; return (result, seconds, extra peak resident bytes)."""
+    try:
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")
+        base = _rss("VmRSS:")
+    except OSError:
+        base = -1
+    t0 = time.perf_counter()
+    result = fn()
+    elapsed = time.perf_counter() - t0
+    extra = _rss("VmHWM:") - base if base >= 0 else -1
+    return result, elapsed, extra
+
+
+def hist_bytes(result) -> int:
+    total = result.weighted.nbytes
+    for name in ("raw", "region_both", "region_one"):
+        arr = getattr(result, name)
+        total += 0 if arr is None else arr.nbytes
+    return total
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--scale", type=float, default=20.0,
+                        help="divide the survey area and every catalogue size by this")
+    parser.add_argument("--repeats", type=int, default=2, help="repeats per count (min taken)")
+    parser.add_argument("--quick", action="store_true", help="scale 200, one repeat (smoke test)")
+    args = parser.parse_args()
+    scale = 200.0 if args.quick else args.scale
+    repeats = 1 if args.quick else max(1, args.repeats)
+    rng = np.random.default_rng(2026)
+    n_data = round(N_DATA_FULL / scale)
+    n_random = round(N_RANDOM_FULL / scale)
+    data = draw_points(n_data, scale, rng)
+    randoms = draw_points(n_random, scale, rng)
+    sets = [tuple(a[k::N_SPLIT] for a in randoms) for k in range(N_SPLIT)]
+    binning = Binning.linear(0.0, S_MAX, N_S, n_mu=N_MU)
+    n_reg = N_SIDE_REGIONS**2
+    ra_span, sin_dec = sector(scale)
+    print(f"machine: {os.cpu_count()} cores, numba threads {numba.config.NUMBA_NUM_THREADS}; "
+          "load average at start: " + ", ".join(f"{v:.2f}" for v in os.getloadavg()))
+    print(f"scale 1/{scale:g}: {n_data} galaxies, {n_random} randoms, {n_reg} regions; sector "
+          f"RA span {np.degrees(ra_span):.2f} deg, |sin Dec| < {sin_dec:.4f}, "
+          f"{CHI_MIN:g}-{CHI_MAX:g} Mpc/h; (s, |mu|) {N_S} x {N_MU} bins to {S_MAX:g} Mpc/h, midpoint")
+
+    f_scaled = inside_fraction(scale, np.random.default_rng(1))
+    f_full = inside_fraction(1.0, np.random.default_rng(1))
+    print(f"fraction of an s_max sphere inside the sector: scaled {f_scaled:.4f}, full {f_full:.4f}"
+          f" -> pairs per object grow by {f_full / f_scaled:.3f} at full size")
+
+    d_pos, d_w, d_reg = data
+    r_pos, r_w, r_reg = randoms
+    counts = {
+        "DD, regions": (lambda: count_pairs(d_pos, d_w, binning=binning, regions1=d_reg,
+                                            n_regions=n_reg), n_data, N_DATA_FULL,
+                        d_pos.nbytes + d_w.nbytes + d_reg.nbytes),
+        "DR, no regions": (lambda: count_pairs(d_pos, d_w, r_pos, r_w, binning=binning),
+                           n_data, N_DATA_FULL, d_pos.nbytes + d_w.nbytes + r_pos.nbytes + r_w.nbytes),
+        "DR, regions": (lambda: count_pairs(d_pos, d_w, r_pos, r_w, binning=binning,
+                                            regions1=d_reg, regions2=r_reg, n_regions=n_reg),
+                        n_data, N_DATA_FULL,
+                        sum(a.nbytes for a in (d_pos, d_w, d_reg, r_pos, r_w, r_reg))),
+        f"RR split ({N_SPLIT} sets), regions": (
+            lambda: split_random_rr(sets, binning=binning, n_regions=n_reg),
+            n_random, N_RANDOM_FULL, sum(a.nbytes for s in sets for a in s)),
+    }
+    # warm-up: compile or load every kernel before timing
+    small = 2000
+    count_pairs(d_pos[:small], d_w[:small], r_pos[:small], r_w[:small], binning=binning,
+                regions1=d_reg[:small], regions2=r_reg[:small], n_regions=n_reg)
+    count_pairs(d_pos[:small], d_w[:small], r_pos[:small], r_w[:small], binning=binning)
+
+    rows = {}
+    for name, (fn, n_scaled, n_full, input_bytes) in counts.items():
+        best, peak = np.inf, 0
+        for _ in range(repeats):
+            result, elapsed, extra = measured(fn)
+            best = min(best, elapsed)
+            peak = max(peak, extra)
+        rows[name] = (result, best, peak, n_scaled, n_full, input_bytes)
+        if name == "DR, no regions":
+            reference = result.weighted
+        if name == "DR, regions":
+            same = np.array_equal(result.weighted, reference)
+
+    mib = 2**20
+    print()
+    print(f"{'count':28s} {'time [s]':>9s} {'pairs':>13s} {'pairs/s':>10s} {'peak extra':>11s} "
+          f"{'in+hist':>9s} {'peak/(in+hist)':>14s} {'full pairs':>11s} {'full [s]':>9s}")
+    total_full = 0.0
+    for name, (result, best, peak, n_scaled, n_full, input_bytes) in rows.items():
+        pairs = result.meta["n_pairs"]
+        rate = pairs / best
+        full_pairs = pairs * (n_full / n_scaled) * (f_full / f_scaled)
+        full_time = full_pairs / rate
+        if name != "DR, no regions":
+            total_full += full_time
+        base = input_bytes + hist_bytes(result)
+        ratio = (input_bytes + peak) / base if peak >= 0 else float("nan")
+        print(f"{name:28s} {best:9.2f} {pairs:13d} {rate:10.3g} {peak / mib:9.1f}Mi "
+              f"{base / mib:7.1f}Mi {ratio:14.2f} {full_pairs:11.3g} {full_time:9.0f}")
+    t_reg = rows["DR, regions"][1]
+    t_plain = rows["DR, no regions"][1]
+    print()
+    print(f"region cost (DR with / without 100 regions, same points): {t_reg / t_plain:.2f}x "
+          f"(target <= 1.2); weighted counts bitwise equal: {same}")
+    print(f"extrapolated full-size DD + DR + RR with regions on this machine: {total_full:.0f} s "
+          f"= {total_full / 60:.1f} min (target <= 8 min)")
+    n_in_full = N_RANDOM_FULL * (3 * 8 + 8 + 8) + N_DATA_FULL * (3 * 8 + 8 + 8)
+    print(f"full-size DR inputs (float64 positions and weights, int64 labels): "
+          f"{n_in_full / 2**30:.2f} GiB")
+    print("load average at end: " + ", ".join(f"{v:.2f}" for v in os.getloadavg()))
+
+
+if __name__ == "__main__":
+    main()
