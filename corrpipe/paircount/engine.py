@@ -68,8 +68,11 @@ def count_units(prepared: PreparedCount, unit_ids) -> PartialCounts:
     hi = np.array([prepared.units[i].cell_hi for i in ids], dtype=np.int64)
     hist_w = np.zeros((n, nflat))
     hist_raw = np.zeros((n, nflat) if prepared.raw else (n, 0), dtype=np.int64)
-    both = np.zeros((n, nreg, nflat) if nreg else (n, 0, 0))
-    one = np.zeros_like(both)
+    # region rows are zeroed by the kernel on first use (a unit touches few regions), so
+    # untouched rows cost neither time nor resident memory
+    regs = (np.empty((n, 2 * nreg + 1, nflat + kernels.N_SPARE)) if nreg
+            else np.zeros((n, 1, 1)))
+    touched = np.zeros((n, nreg), dtype=np.bool_)
     c1, c2 = prepared.cat1, prepared.cat2
     a = prepared.kernel_args
     accepted = kernels.count_unit_batch(
@@ -78,13 +81,13 @@ def count_units(prepared: PreparedCount, unit_ids) -> PartialCounts:
         a["shape"], a["offsets"], a["kinds"], a["periodic"], a["box"], a["mode"], a["los"],
         a["orient"], a["q_lo"], a["q_hi"], a["lut"], a["q0"], a["lut_scale"], a["e2"],
         a["edges_b"], a["uniform_b"], a["abs_mu"], a["inv_width_b"], a["pi_lo"], a["pi_hi"],
-        hist_w, hist_raw, both, one, prepared.raw, nreg > 0, a["max_occupancy"],
-        prepared.grid.origin, prepared.grid.side, a["tol"], a["linear_s"] and _VECTOR,
-        a["s0"], a["ds"])
+        hist_w, hist_raw, regs, touched, a["cell_region2"], prepared.raw, nreg > 0,
+        a["max_occupancy"], prepared.grid.origin, prepared.grid.side, a["tol"],
+        a["linear_s"] and _VECTOR, a["s0"], a["ds"])
     weighted = _ordered_sum(hist_w, nflat)
     raw = _ordered_sum(hist_raw, nflat, np.int64) if prepared.raw else None
-    region_both = _ordered_sum(both, (nreg, nflat)) if nreg else None
-    region_one = _ordered_sum(one, (nreg, nflat)) if nreg else None
+    region_both = _ordered_region_sum(regs, touched, nflat, 0) if nreg else None
+    region_one = _ordered_region_sum(regs, touched, nflat, nreg) if nreg else None
     return PartialCounts(ids, weighted, raw, region_both, region_one, int(accepted.sum()))
 
 
@@ -93,6 +96,21 @@ def _ordered_sum(stack: np.ndarray, shape, dtype=np.float64) -> np.ndarray:
     total = np.zeros(shape, dtype=dtype)
     for part in stack:
         total += part
+    return total
+
+
+def _ordered_region_sum(stack: np.ndarray, touched: np.ndarray, nflat: int,
+                        first_row: int) -> np.ndarray:
+    """Sum the touched region rows (``first_row + region``) of per-unit histograms in unit order.
+
+    Skipping an untouched row equals adding its zeros, so the result is bitwise that of a sum
+    over dense rows; the spare columns (kernel scratch) are dropped.
+    """
+    total = np.zeros((touched.shape[1], nflat))
+    for u in range(stack.shape[0]):
+        rows = np.flatnonzero(touched[u])
+        if rows.size:
+            total[rows] += stack[u, first_row + rows, :nflat]
     return total
 
 

@@ -327,6 +327,8 @@ def prepare_count(positions1, weights1=None, positions2=None, weights2=None, *,
         abs_mu=not mu_signed, inv_width_b=float(1.0 / widths_b[0]),
         pi_lo=pi_lo, pi_hi=pi_hi,
         max_occupancy=int(np.diff(cat2.start).max(initial=0)) + 1,
+        cell_region2=(kernels.cell_regions(cat2.start, cat2.regions) if n_regions
+                      else np.zeros(0, dtype=np.int32)),
         # slack of the point-to-cell pruning, far above the rounding of cell assignment
         tol=1e-9 * float(np.max(np.abs(grid.origin)) + np.max(grid.side * grid.shape)),
     )
