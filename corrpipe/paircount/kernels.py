@@ -22,6 +22,7 @@ __all__ = [
     "cell_pair_costs",
     "count_unit_batch",
     "cell_regions",
+    "region_weight_sums",
     "N_SPARE",
 ]
 
@@ -82,6 +83,19 @@ def sort_into_cells(pos, weights, regions, origin, inv_side, shape, box, start,
             rs[k] = regions[i]
         if with_order:
             order[k] = i
+
+
+@njit(cache=True)
+def region_weight_sums(regions, weights, n_regions):
+    """Sum of weights and of squared weights per region label (float64, n_regions each),
+    accumulated in input order."""
+    sw = np.zeros(n_regions)
+    sw2 = np.zeros(n_regions)
+    for i in range(regions.shape[0]):
+        w = weights[i]
+        sw[regions[i]] += w
+        sw2[regions[i]] += w * w
+    return sw, sw2
 
 
 @njit(cache=True)
