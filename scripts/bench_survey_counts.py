@@ -13,6 +13,9 @@ Counts, each in one process on the same points:
 
 - DD with regions (auto-count of the galaxies);
 - DR with regions, and the same DR without regions (their time ratio is the region cost);
+  regions shrink with the scaled sector (more cells straddle them than at full size), so DR
+  is also counted with the full-size region grid (regions of full-size extent, about
+  100 / scale of them in the scaled sector), which is what a unit meets at full size;
 - RR from split randoms (Keihänen et al. 2019, A&A 631, A73): M = 20 random sets of the data
   size, pairs only within each set, with regions.
 
@@ -65,7 +68,9 @@ def sector(scale: float) -> tuple:
 
 
 def draw_points(n: int, scale: float, rng: np.random.Generator):
-    """Points uniform in comoving volume in the sector; their region labels (int64)."""
+    """Points uniform in comoving volume in the sector; their region labels (int64) on a 10 x 10
+    grid over the scaled sector, and on the full-size sector's grid (regions of full-size
+    extent, of which the scaled sector holds about 100 / scale)."""
     ra_span, sin_dec = sector(scale)
     ra = rng.uniform(0.0, ra_span, n)
     sdec = rng.uniform(-sin_dec, sin_dec, n)
@@ -75,14 +80,18 @@ def draw_points(n: int, scale: float, rng: np.random.Generator):
     i_ra = np.minimum((ra / ra_span * N_SIDE_REGIONS).astype(np.int64), N_SIDE_REGIONS - 1)
     i_dec = np.minimum(((sdec + sin_dec) / (2 * sin_dec) * N_SIDE_REGIONS).astype(np.int64),
                        N_SIDE_REGIONS - 1)
-    return pos, rng.uniform(0.8, 1.2, n), i_ra * N_SIDE_REGIONS + i_dec
+    f_ra = np.minimum((ra / RA_SPAN * N_SIDE_REGIONS).astype(np.int64), N_SIDE_REGIONS - 1)
+    f_dec = np.minimum(((sdec + SIN_DEC) / (2 * SIN_DEC) * N_SIDE_REGIONS).astype(np.int64),
+                       N_SIDE_REGIONS - 1)
+    return (pos, rng.uniform(0.8, 1.2, n), i_ra * N_SIDE_REGIONS + i_dec,
+            f_ra * N_SIDE_REGIONS + f_dec)
 
 
 def inside_fraction(scale: float, rng: np.random.Generator, n_centres: int = 20000,
                     n_offsets: int = 64) -> float:
     """Mean fraction of a sphere of radius S_MAX around a sector point that is in the sector."""
     ra_span, sin_dec = sector(scale)
-    centres, _, _ = draw_points(n_centres, scale, rng)
+    centres = draw_points(n_centres, scale, rng)[0]
     u = rng.normal(size=(n_offsets, 3))
     u *= (S_MAX * np.cbrt(rng.uniform(0, 1, n_offsets)) / np.linalg.norm(u, axis=1))[:, None]
     p = centres[:, None, :] + u[None, :, :]
@@ -141,7 +150,7 @@ def main() -> None:
     n_random = round(N_RANDOM_FULL / scale)
     data = draw_points(n_data, scale, rng)
     randoms = draw_points(n_random, scale, rng)
-    sets = [tuple(a[k::N_SPLIT] for a in randoms) for k in range(N_SPLIT)]
+    sets = [tuple(a[k::N_SPLIT] for a in randoms[:3]) for k in range(N_SPLIT)]
     binning = Binning.linear(0.0, S_MAX, N_S, n_mu=N_MU)
     n_reg = N_SIDE_REGIONS**2
     ra_span, sin_dec = sector(scale)
@@ -159,8 +168,8 @@ def main() -> None:
     print(f"fraction of an s_max sphere inside the sector: scaled {f_scaled:.4f}, full {f_full:.4f}"
           f" -> pairs per object grow by {f_full / f_scaled:.3f} at full size")
 
-    d_pos, d_w, d_reg = data
-    r_pos, r_w, r_reg = randoms
+    d_pos, d_w, d_reg, d_big = data
+    r_pos, r_w, r_reg, r_big = randoms
     counts = {
         "DD, regions": (lambda: count_pairs(d_pos, d_w, binning=binning, regions1=d_reg,
                                             n_regions=n_reg), n_data, N_DATA_FULL,
@@ -171,6 +180,11 @@ def main() -> None:
                                             regions1=d_reg, regions2=r_reg, n_regions=n_reg),
                         n_data, N_DATA_FULL,
                         sum(a.nbytes for a in (d_pos, d_w, d_reg, r_pos, r_w, r_reg))),
+        "DR, full-size regions": (lambda: count_pairs(d_pos, d_w, r_pos, r_w, binning=binning,
+                                                      regions1=d_big, regions2=r_big,
+                                                      n_regions=n_reg),
+                                  n_data, N_DATA_FULL,
+                                  sum(a.nbytes for a in (d_pos, d_w, d_big, r_pos, r_w, r_big))),
         f"RR split ({N_SPLIT} sets), regions": (
             lambda: split_random_rr(sets, binning=binning, n_regions=n_reg),
             n_random, N_RANDOM_FULL, sum(a.nbytes for s in sets for a in s)),
@@ -194,6 +208,8 @@ def main() -> None:
             reference = result.weighted
         if name == "DR, regions":
             same = np.array_equal(result.weighted, reference)
+        if name == "DR, full-size regions":
+            same = same and np.array_equal(result.weighted, reference)
 
     mib = 2**20
     threads = numba.config.NUMBA_NUM_THREADS
@@ -208,7 +224,7 @@ def main() -> None:
         full_pairs = pairs * growth
         full_time = best * growth
         full_cpu = cpu * growth / threads
-        if name != "DR, no regions":
+        if name not in ("DR, no regions", "DR, full-size regions"):
             total_full += full_time
             total_cpu += full_cpu
         base = input_bytes + hist_bytes(result)
@@ -218,9 +234,14 @@ def main() -> None:
               f"{full_pairs:10.3g} {full_time:9.0f} {full_cpu:12.0f}")
     t_reg, c_reg = rows["DR, regions"][1:3]
     t_plain, c_plain = rows["DR, no regions"][1:3]
+    t_big, c_big = rows["DR, full-size regions"][1:3]
     print()
     print(f"region cost (DR with / without 100 regions, same points): wall {t_reg / t_plain:.2f}x, "
           f"cpu {c_reg / c_plain:.2f}x (target <= 1.2); weighted counts bitwise equal: {same}")
+    present = len(np.unique(r_big))
+    print(f"with regions of full-size extent ({present} of the 100 full-size regions fall in the "
+          f"scaled sector, as a unit meets them at full size): wall {t_big / t_plain:.2f}x, "
+          f"cpu {c_big / c_plain:.2f}x")
     print(f"extrapolated full-size DD + DR + RR with regions: {total_full:.0f} s = "
           f"{total_full / 60:.1f} min wall as measured; {total_cpu:.0f} s = {total_cpu / 60:.1f} min "
           f"if each of the {threads} threads had a core to itself (CPU time / threads; the "
