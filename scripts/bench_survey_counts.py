@@ -31,7 +31,9 @@ the count would take with a core per thread and perfect scaling (an optimistic b
 
 Peak memory: resident-set high-water mark from ``/proc/self/status`` (VmHWM, reset with
 ``/proc/self/clear_refs`` before each count; Linux only), minus the resident size before the
-count, which already holds the inputs. It is compared with inputs + result histograms.
+count, which already holds the inputs. It is compared with inputs + result histograms. Memory
+freed by an earlier count stays in the process and is reused, so after the first count the
+figure is a lower bound; ``--full-memory`` measures a full-size DR count in a fresh process.
 
 Usage: ``python scripts/bench_survey_counts.py [--scale 20] [--repeats 2] [--quick]``.
 Not part of the test suite.
@@ -136,13 +138,48 @@ def hist_bytes(result) -> int:
     return total
 
 
+def full_memory() -> None:
+    """Peak memory of a full-size DR count: preparation (validation, cell-sorted copies, plan)
+    and one batch of work units, which is all a count holds at once (later batches reuse the
+    same amount and are summed as they finish)."""
+    from corrpipe.paircount import count_units, prepare_count
+
+    rng = np.random.default_rng(5)
+    d_pos, d_w, _, d_reg = draw_points(N_DATA_FULL, 1.0, rng)
+    r_pos, r_w, _, r_reg = draw_points(N_RANDOM_FULL, 1.0, rng)
+    binning = Binning.linear(0.0, S_MAX, N_S, n_mu=N_MU)
+    inputs = sum(a.nbytes for a in (d_pos, d_w, d_reg, r_pos, r_w, r_reg))
+
+    def prepare_and_one_batch():
+        prepared = prepare_count(d_pos, d_w, r_pos, r_w, binning=binning, regions1=d_reg,
+                                 regions2=r_reg, n_regions=N_SIDE_REGIONS**2)
+        part = count_units(prepared, range(min(8, prepared.n_units)))
+        return prepared, part
+
+    (prepared, part), elapsed, _, extra = measured(prepare_and_one_batch)
+    hist = 8 * prepared.n_flat_bins * (1 + 2 * prepared.n_regions)
+    gib = 2**30
+    peak = inputs + extra
+    print(f"full-size DR, {N_DATA_FULL} x {N_RANDOM_FULL}, 100 regions: inputs {inputs / gib:.3f} GiB, "
+          f"result histograms {hist / 2**20:.1f} MiB, extra peak (VmHWM) {extra / gib:.3f} GiB, "
+          f"peak {peak / gib:.3f} GiB = {peak / (inputs + hist):.2f} x (inputs + histograms); "
+          f"headroom on a 24 GiB machine {24 - peak / gib:.1f} GiB "
+          f"(prepare + first batch took {elapsed:.0f} s; {part.n_pairs} pairs in it)")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--scale", type=float, default=20.0,
                         help="divide the survey area and every catalogue size by this")
     parser.add_argument("--repeats", type=int, default=2, help="repeats per count (min taken)")
     parser.add_argument("--quick", action="store_true", help="scale 200, one repeat (smoke test)")
+    parser.add_argument("--full-memory", action="store_true",
+                        help="only measure the peak memory of a full-size DR count with regions "
+                             "(prepare plus one batch of units; about 2 GiB, no full count)")
     args = parser.parse_args()
+    if args.full_memory:
+        full_memory()
+        return
     scale = 200.0 if args.quick else args.scale
     repeats = 1 if args.quick else max(1, args.repeats)
     rng = np.random.default_rng(2026)
@@ -247,6 +284,8 @@ def main() -> None:
           f"if each of the {threads} threads had a core to itself (CPU time / threads; the "
           "contention of other processes inflates the wall time) (target <= 8 min)")
     n_in_full = N_RANDOM_FULL * (3 * 8 + 8 + 8) + N_DATA_FULL * (3 * 8 + 8 + 8)
+    print("peak extra: memory beyond what the process held before the count (a lower bound "
+          "after the first count; see --full-memory)")
     print(f"full-size DR inputs (float64 positions and weights, int64 labels): "
           f"{n_in_full / 2**30:.2f} GiB")
     print("load average at end: " + ", ".join(f"{v:.2f}" for v in os.getloadavg()))
