@@ -35,7 +35,7 @@ count, which already holds the inputs. It is compared with inputs + result histo
 freed by an earlier count stays in the process and is reused, so after the first count the
 figure is a lower bound; ``--full-memory`` measures a full-size DR count in a fresh process.
 
-Usage: ``python scripts/bench_survey_counts.py [--scale 20] [--repeats 2] [--quick]``.
+Usage: ``python scripts/bench_survey_counts.py [--scale 20] [--repeats 2] [--quick] [--full-memory]``.
 Not part of the test suite.
 """
 
