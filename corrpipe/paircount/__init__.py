@@ -10,6 +10,7 @@ from corrpipe.paircount.binning import Binning
 from corrpipe.paircount.engine import (
     LINES_OF_SIGHT,
     CountStopped,
+    OrderedReduction,
     PartialCounts,
     PreparedCount,
     WorkUnit,
@@ -32,6 +33,7 @@ __all__ = [
     "Binning",
     "LINES_OF_SIGHT",
     "CountStopped",
+    "OrderedReduction",
     "PairCounts",
     "PartialCounts",
     "PreparedCount",

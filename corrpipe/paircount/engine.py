@@ -32,6 +32,7 @@ __all__ = [
     "count_units",
     "reduce_partials",
     "count_pairs",
+    "OrderedReduction",
 ]
 
 _BATCH_MEMORY = 256 * 2**20  # bytes of per-unit histograms held at once
@@ -68,8 +69,11 @@ def count_units(prepared: PreparedCount, unit_ids) -> PartialCounts:
     hi = np.array([prepared.units[i].cell_hi for i in ids], dtype=np.int64)
     hist_w = np.zeros((n, nflat))
     hist_raw = np.zeros((n, nflat) if prepared.raw else (n, 0), dtype=np.int64)
-    both = np.zeros((n, nreg, nflat) if nreg else (n, 0, 0))
-    one = np.zeros_like(both)
+    # region rows are zeroed by the kernel on first use (a unit touches few regions), so
+    # untouched rows cost neither time nor resident memory
+    regs = (np.empty((n, 2 * nreg + 1, nflat + kernels.N_SPARE)) if nreg
+            else np.zeros((n, 1, 1)))
+    touched = np.zeros((n, nreg), dtype=np.bool_)
     c1, c2 = prepared.cat1, prepared.cat2
     a = prepared.kernel_args
     accepted = kernels.count_unit_batch(
@@ -78,13 +82,13 @@ def count_units(prepared: PreparedCount, unit_ids) -> PartialCounts:
         a["shape"], a["offsets"], a["kinds"], a["periodic"], a["box"], a["mode"], a["los"],
         a["orient"], a["q_lo"], a["q_hi"], a["lut"], a["q0"], a["lut_scale"], a["e2"],
         a["edges_b"], a["uniform_b"], a["abs_mu"], a["inv_width_b"], a["pi_lo"], a["pi_hi"],
-        hist_w, hist_raw, both, one, prepared.raw, nreg > 0, a["max_occupancy"],
-        prepared.grid.origin, prepared.grid.side, a["tol"], a["linear_s"] and _VECTOR,
-        a["s0"], a["ds"])
+        hist_w, hist_raw, regs, touched, a["cell_region2"], prepared.raw, nreg > 0,
+        a["max_occupancy"], prepared.grid.origin, prepared.grid.side, a["tol"],
+        a["linear_s"] and _VECTOR, a["s0"], a["ds"])
     weighted = _ordered_sum(hist_w, nflat)
     raw = _ordered_sum(hist_raw, nflat, np.int64) if prepared.raw else None
-    region_both = _ordered_sum(both, (nreg, nflat)) if nreg else None
-    region_one = _ordered_sum(one, (nreg, nflat)) if nreg else None
+    region_both = _ordered_region_sum(regs, touched, nflat, 0) if nreg else None
+    region_one = _ordered_region_sum(regs, touched, nflat, nreg) if nreg else None
     return PartialCounts(ids, weighted, raw, region_both, region_one, int(accepted.sum()))
 
 
@@ -96,52 +100,111 @@ def _ordered_sum(stack: np.ndarray, shape, dtype=np.float64) -> np.ndarray:
     return total
 
 
+def _ordered_region_sum(stack: np.ndarray, touched: np.ndarray, nflat: int,
+                        first_row: int) -> np.ndarray:
+    """Sum the touched region rows (``first_row + region``) of per-unit histograms in unit order.
+
+    Skipping an untouched row equals adding its zeros, so the result is bitwise that of a sum
+    over dense rows; the spare columns (kernel scratch) are dropped.
+    """
+    total = np.zeros((touched.shape[1], nflat))
+    for u in range(stack.shape[0]):
+        rows = np.flatnonzero(touched[u])
+        if rows.size:
+            total[rows] += stack[u, first_row + rows, :nflat]
+    return total
+
+
+def _first_unit(part: PartialCounts) -> int:
+    return int(part.unit_ids[0]) if part.unit_ids.size else -1
+
+
+class OrderedReduction:
+    """Running sum of partial counts, added strictly in the order of their first unit.
+
+    Partials may arrive in any order; each is held only until all partials before it have been
+    added, then summed and dropped, so a count keeps one result's histograms (plus any early
+    arrivals) instead of every partial. The sum is bitwise that of :func:`reduce_partials`.
+
+    Parameters
+    ----------
+    prepared : PreparedCount
+    first_units : iterable of int
+        First unit id of every partial that will be added (fixes the order).
+    """
+
+    def __init__(self, prepared: PreparedCount, first_units) -> None:
+        self.prepared = prepared
+        self._order = sorted(int(k) for k in first_units)
+        self._next = 0
+        self._pending: dict = {}
+        self._ids: list = []
+        nflat = prepared.n_flat_bins
+        nreg = prepared.n_regions
+        self.weighted = np.zeros(nflat)
+        self.raw = np.zeros(nflat, dtype=np.int64) if prepared.raw else None
+        self.both = np.zeros((nreg, nflat)) if nreg else None
+        self.one = np.zeros((nreg, nflat)) if nreg else None
+        self.n_pairs = 0
+
+    def add(self, part: PartialCounts) -> None:
+        """Hold ``part`` and add every partial whose predecessors are all in."""
+        self._pending[_first_unit(part)] = part
+        while self._next < len(self._order) and self._order[self._next] in self._pending:
+            ready = self._pending.pop(self._order[self._next])
+            self._next += 1
+            self.weighted += ready.weighted
+            if self.raw is not None:
+                self.raw += ready.raw
+            if self.both is not None:
+                self.both += ready.region_both
+                self.one += ready.region_one
+            self.n_pairs += ready.n_pairs
+            self._ids.append(ready.unit_ids)
+
+    def result(self) -> PairCounts:
+        """The summed counts; raises StageError unless every unit was added exactly once."""
+        prepared = self.prepared
+        seen = np.concatenate(self._ids) if self._ids else np.zeros(0, dtype=np.int64)
+        if (self._pending or seen.size != prepared.n_units
+                or not np.array_equal(np.sort(seen), np.arange(prepared.n_units))):
+            missing = np.setdiff1d(np.arange(prepared.n_units), seen)
+            raise StageError(
+                f"partial counts do not cover every work unit exactly once: {seen.size} unit "
+                f"results for {prepared.n_units} units, {missing.size} missing (first: "
+                f"{missing[:5].tolist()})"
+            )
+        shape = prepared.binning.shape
+        nreg = prepared.n_regions
+        c1, c2 = prepared.cat1, prepared.cat2
+        return PairCounts(
+            mode=prepared.binning.mode,
+            edges=tuple(e.copy() for e in prepared.binning.edges),
+            weighted=self.weighted.reshape(shape),
+            auto=prepared.auto,
+            sum_w1=c1.sum_w, sum_w1_sq=c1.sum_w_sq, sum_w2=c2.sum_w, sum_w2_sq=c2.sum_w_sq,
+            n1=c1.n, n2=c2.n, los=prepared.los, box_size=prepared.box_size,
+            raw=self.raw.reshape(shape) if self.raw is not None else None,
+            region_both=self.both.reshape((nreg,) + shape) if self.both is not None else None,
+            region_one=self.one.reshape((nreg,) + shape) if self.one is not None else None,
+            region_sum_w1=c1.region_sum_w, region_sum_w1_sq=c1.region_sum_w_sq,
+            region_sum_w2=c2.region_sum_w, region_sum_w2_sq=c2.region_sum_w_sq,
+            mu_range=prepared.binning.mu_range,
+            meta={"n_pairs": self.n_pairs, "n_units": prepared.n_units},
+        )
+
+
 def reduce_partials(prepared: PreparedCount, partials) -> PairCounts:
     """Combine partial counts covering every unit exactly once into a :class:`PairCounts`.
 
     Partials are summed in the order of their first unit, so the same partition of units gives
     bitwise the same result whatever engine, thread count or interruption produced them.
     """
-    parts = sorted(partials, key=lambda p: int(p.unit_ids[0]) if p.unit_ids.size else -1)
-    seen = np.concatenate([p.unit_ids for p in parts]) if parts else np.zeros(0, dtype=np.int64)
-    if seen.size != prepared.n_units or not np.array_equal(np.sort(seen), np.arange(prepared.n_units)):
-        missing = np.setdiff1d(np.arange(prepared.n_units), seen)
-        raise StageError(
-            f"partial counts do not cover every work unit exactly once: {seen.size} unit results "
-            f"for {prepared.n_units} units, {missing.size} missing (first: {missing[:5].tolist()})"
-        )
-    nflat = prepared.n_flat_bins
-    shape = prepared.binning.shape
-    weighted = np.zeros(nflat)
-    raw = np.zeros(nflat, dtype=np.int64) if prepared.raw else None
-    nreg = prepared.n_regions
-    both = np.zeros((nreg, nflat)) if nreg else None
-    one = np.zeros((nreg, nflat)) if nreg else None
-    n_pairs = 0
-    for part in parts:
-        weighted += part.weighted
-        if raw is not None:
-            raw += part.raw
-        if both is not None:
-            both += part.region_both
-            one += part.region_one
-        n_pairs += part.n_pairs
-    c1, c2 = prepared.cat1, prepared.cat2
-    return PairCounts(
-        mode=prepared.binning.mode,
-        edges=tuple(e.copy() for e in prepared.binning.edges),
-        weighted=weighted.reshape(shape),
-        auto=prepared.auto,
-        sum_w1=c1.sum_w, sum_w1_sq=c1.sum_w_sq, sum_w2=c2.sum_w, sum_w2_sq=c2.sum_w_sq,
-        n1=c1.n, n2=c2.n, los=prepared.los, box_size=prepared.box_size,
-        raw=raw.reshape(shape) if raw is not None else None,
-        region_both=both.reshape((nreg,) + shape) if both is not None else None,
-        region_one=one.reshape((nreg,) + shape) if one is not None else None,
-        region_sum_w1=c1.region_sum_w, region_sum_w1_sq=c1.region_sum_w_sq,
-        region_sum_w2=c2.region_sum_w, region_sum_w2_sq=c2.region_sum_w_sq,
-        mu_range=prepared.binning.mu_range,
-        meta={"n_pairs": n_pairs, "n_units": prepared.n_units},
-    )
+    parts = list(partials)
+    reduction = OrderedReduction(prepared, [_first_unit(p) for p in parts])
+    for part in sorted(parts, key=_first_unit):
+        reduction.add(part)
+    return reduction.result()
 
 
 def count_pairs(positions1, weights1=None, positions2=None, weights2=None, *,
@@ -235,10 +298,15 @@ def count_pairs(positions1, weights1=None, positions2=None, weights2=None, *,
                                  _BATCH_MEMORY // max(1, _unit_histogram_bytes(prepared))))
 
     sidecar = ProgressSidecar(progress_path, prepared) if progress_path is not None else None
-    partials = sidecar.load() if sidecar is not None else []
-    done = set(int(u) for p in partials for u in p.unit_ids)
+    loaded = sidecar.load() if sidecar is not None else []
+    done = {int(u) for p in loaded for u in p.unit_ids}
     todo = [u.index for u in prepared.units if u.index not in done]
     batches = [todo[i:i + units_per_batch] for i in range(0, len(todo), units_per_batch)]
+    # batches are summed as they finish (in unit order), never all held at once
+    reduction = OrderedReduction(prepared, [_first_unit(p) for p in loaded] + [b[0] for b in batches])
+    for part in sorted(loaded, key=_first_unit):
+        reduction.add(part)
+    del loaded
 
     from tqdm.auto import tqdm
 
@@ -253,7 +321,7 @@ def count_pairs(positions1, weights1=None, positions2=None, weights2=None, *,
             part = count_units(prepared, batch)
             if sidecar is not None:
                 sidecar.save(part)
-            partials.append(part)
+            reduction.add(part)
             pairs_here += part.n_pairs
             units_here += len(batch)
             elapsed = max(time.perf_counter() - started, 1e-9)
@@ -269,4 +337,4 @@ def count_pairs(positions1, weights1=None, positions2=None, weights2=None, *,
     finally:
         numba.set_num_threads(previous_threads)
         bar.close()
-    return reduce_partials(prepared, partials)
+    return reduction.result()

@@ -21,6 +21,9 @@ __all__ = [
     "sort_into_cells",
     "cell_pair_costs",
     "count_unit_batch",
+    "cell_regions",
+    "region_weight_sums",
+    "N_SPARE",
 ]
 
 
@@ -80,6 +83,19 @@ def sort_into_cells(pos, weights, regions, origin, inv_side, shape, box, start,
             rs[k] = regions[i]
         if with_order:
             order[k] = i
+
+
+@njit(cache=True)
+def region_weight_sums(regions, weights, n_regions):
+    """Sum of weights and of squared weights per region label (float64, n_regions each),
+    accumulated in input order."""
+    sw = np.zeros(n_regions)
+    sw2 = np.zeros(n_regions)
+    for i in range(regions.shape[0]):
+        w = weights[i]
+        sw[regions[i]] += w
+        sw2[regions[i]] += w * w
+    return sw, sw2
 
 
 @njit(cache=True)
@@ -433,7 +449,51 @@ def _count_unit_smu_uniform(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, 
     return n_pairs
 
 
-_N_SPARE = 16  # spare histogram slots that absorb out-of-range candidates (see below)
+@njit(cache=True, inline="always")
+def _touch(r, regs, n_reg, touched):
+    """Zero region r's rows (both: ``regs[r]``, one: ``regs[n_reg + r]``) the first time a unit
+    uses them."""
+    if not touched[r]:
+        regs[r, :] = 0.0
+        regs[n_reg + r, :] = 0.0
+        touched[r] = True
+
+
+@njit(cache=True)
+def _touch_cells(c1, c2, r1, start1, r2, start2, cell_region2, regs, n_reg, touched):
+    """Clear the region rows the pairs of cells c1 x c2 can add to."""
+    for i in range(start1[c1], start1[c1 + 1]):
+        _touch(r1[i], regs, n_reg, touched)
+    if cell_region2[c2] >= 0:
+        _touch(cell_region2[c2], regs, n_reg, touched)
+    else:
+        for j in range(start2[c2], start2[c2 + 1]):
+            _touch(r2[j], regs, n_reg, touched)
+
+
+@njit(cache=True)
+def cell_regions(start, regions):
+    """Region label shared by every point of each cell (int32), -1 when a cell mixes regions
+    or is empty. ``regions`` is in cell order (as :func:`sort_into_cells` leaves it)."""
+    n_cells = start.shape[0] - 1
+    out = np.full(n_cells, -1, dtype=np.int32)
+    for c in range(n_cells):
+        a = start[c]
+        b = start[c + 1]
+        if a == b:
+            continue
+        r = regions[a]
+        same = True
+        for k in range(a + 1, b):
+            if regions[k] != r:
+                same = False
+                break
+        if same:
+            out[c] = r
+    return out
+
+
+N_SPARE = 16  # spare histogram slots that absorb out-of-range candidates (see below)
 
 
 @njit(cache=True, inline="always")
@@ -459,14 +519,14 @@ def _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu):
 @njit(cache=True, error_model="numpy")
 def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
                            shape, offsets, kinds, periodic, box, los, q_lo, q_hi,
-                           s0, ds, n_s, n_mu, hist_w, hist_raw, both, one, with_raw,
-                           with_regions, ibuf, origin, side, tol):
+                           s0, ds, n_s, n_mu, hist_w, hist_raw, regs, touched,
+                           cell_region2, with_raw, with_regions, ibuf, kbuf, origin, side, tol):
     """Vectorised variant of :func:`_count_unit_smu_uniform` for linear s bins.
 
     For each point i and neighbour cell, one branch-free loop over the contiguous candidates
     computes every candidate's flat bin (SIMD: no compaction, no table look-up, no
     data-dependent branch, unsigned indices so the loads stay contiguous); candidates outside
-    the separation range get one of ``_N_SPARE`` spare slots past the histogram, rotated so
+    the separation range get one of ``N_SPARE`` spare slots past the histogram, rotated so
     that consecutive spare updates do not wait on each other. A second loop adds the weights.
     """
     half = 0.5 * box
@@ -476,10 +536,12 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
     inv_ds = 1.0 / ds
     mu_step = 1.0 / n_mu
     n_flat = n_s * n_mu
-    local = np.zeros(n_flat + _N_SPARE)
-    local_raw = np.zeros(n_flat + _N_SPARE if with_raw else 0, dtype=np.int64)
+    local = np.zeros(n_flat + N_SPARE)
+    local_raw = np.zeros(n_flat + N_SPARE if with_raw else 0, dtype=np.int64)
     n_pairs = 0
     n2 = x2.shape[0]
+    n_reg = touched.shape[0]
+    scratch = 2 * n_reg
     for c1 in range(c_lo, c_hi):
         a0 = start1[c1]
         a1 = start1[c1 + 1]
@@ -496,6 +558,8 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
             b1 = start2[c2 + 1]
             if b0 == b1:
                 continue
+            if with_regions:
+                _touch_cells(c1, c2, r1, start1, r2, start2, cell_region2, regs, n_reg, touched)
             prune = (not periodic) and kind != 1
             lox, loy, loz, hix, hiy, hiz = _cell_bounds(c2, origin, side, tol, ny, nz)
             for i in range(a0, a1):
@@ -526,7 +590,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                         mu = abs(dl) / np.sqrt(max(q, 1e-300))
                         ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
                         flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
-                        ibuf[t] = flat if ok else n_flat + (t & (_N_SPARE - 1))
+                        ibuf[t] = flat if ok else n_flat + (t & (N_SPARE - 1))
                         kept += ok
                 elif axis >= 0:
                     for t in range(n):
@@ -544,7 +608,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                         mu = abs(dl) / np.sqrt(max(q, 1e-300))
                         ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
                         flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
-                        ibuf[t] = flat if ok else n_flat + (t & (_N_SPARE - 1))
+                        ibuf[t] = flat if ok else n_flat + (t & (N_SPARE - 1))
                         kept += ok
                 else:
                     for t in range(n):
@@ -564,31 +628,60 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                         mu = abs(dl) / np.sqrt(max(l2 * q, 1e-300))
                         ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
                         flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
-                        ibuf[t] = flat if ok else n_flat + (t & (_N_SPARE - 1))
+                        ibuf[t] = flat if ok else n_flat + (t & (N_SPARE - 1))
                         kept += ok
                 if kept == 0:
                     continue
                 n_pairs += kept
                 wi = w1[i]
+                # compact the kept candidates (branch-free store, then count), so that the
+                # scatter loops below touch only pairs that count
+                m = 0
                 for t in range(n):
-                    local[ibuf[t]] += wi * w2[jlo + np.uint64(t)]
+                    kbuf[m] = t
+                    m += ibuf[t] < n_flat
+                if not with_regions:
+                    for k in range(m):
+                        t = kbuf[k]
+                        local[ibuf[t]] += wi * w2[jlo + np.uint64(t)]
+                else:
+                    # region rows were cleared before the loop over i
+                    ri = r1[i]
+                    rc = cell_region2[c2]
+                    if rc == ri:
+                        row = regs[ri]
+                        for k in range(m):
+                            t = kbuf[k]
+                            flat = ibuf[t]
+                            w = wi * w2[jlo + np.uint64(t)]
+                            local[flat] += w
+                            row[flat] += w
+                    elif rc >= 0:
+                        row_i = regs[n_reg + ri]
+                        row_c = regs[n_reg + rc]
+                        for k in range(m):
+                            t = kbuf[k]
+                            flat = ibuf[t]
+                            w = wi * w2[jlo + np.uint64(t)]
+                            local[flat] += w
+                            row_i[flat] += w
+                            row_c[flat] += w
+                    else:
+                        # mixed cell: a same-region pair adds to both[ri] and to the scratch
+                        # row; any other pair to one[ri] and one[rj]
+                        for k in range(m):
+                            t = kbuf[k]
+                            j = jlo + np.uint64(t)
+                            rj = r2[j]
+                            w = wi * w2[j]
+                            flat = ibuf[t]
+                            same = rj == ri
+                            local[flat] += w
+                            regs[ri if same else n_reg + ri, flat] += w
+                            regs[scratch if same else n_reg + rj, flat] += w
                 if with_raw:
                     for t in range(n):
                         local_raw[ibuf[t]] += 1
-                if with_regions:
-                    ri = r1[i]
-                    for t in range(n):
-                        flat = ibuf[t]
-                        if flat >= n_flat:
-                            continue
-                        j = jlo + np.uint64(t)
-                        rj = r2[j]
-                        w = wi * w2[j]
-                        if ri == rj:
-                            both[ri, flat] += w
-                        else:
-                            one[ri, flat] += w
-                            one[rj, flat] += w
     for k in range(n_flat):
         hist_w[k] += local[k]
     if with_raw:
@@ -601,13 +694,19 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
                      x2, y2, z2, w2, r2, o2, start2, shape, offsets, kinds, periodic, box,
                      mode, los, orient, q_lo, q_hi, lut, q0, lut_scale, e2,
                      edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-                     hist_w, hist_raw, both, one, with_raw, with_regions, max_occupancy,
-                     origin, side, tol, linear_s, s0, ds):
+                     hist_w, hist_raw, regs, touched, cell_region2, with_raw, with_regions,
+                     max_occupancy, origin, side, tol, linear_s, s0, ds):
     """Count a batch of work units in parallel, one histogram slice per unit.
 
     ``unit_lo[u] <= c1 < unit_hi[u]`` are the catalogue-1 cells of unit u. Histograms have a
-    leading unit axis: ``hist_w[u, flat_bin]``, ``both[u, region, flat_bin]``. Each unit is
-    counted by one thread in a fixed order, so results do not depend on the thread count.
+    leading unit axis: ``hist_w[u, flat_bin]``. Each unit is counted by one thread in a fixed
+    order, so results do not depend on the thread count. The region histograms of unit u are
+    ``regs[u]``, shape (2 n_regions + 1, n_flat + N_SPARE): rows ``[0, n_regions)`` hold pairs
+    with both members in the region, rows ``[n_regions, 2 n_regions)`` pairs with one member
+    there, the last row and the last N_SPARE columns are scratch. ``regs`` may arrive
+    uninitialised: a unit zeroes region r's rows before it first adds to them and sets
+    ``touched[u, r]``; untouched rows hold no pairs and must be ignored.
+    ``cell_region2`` is :func:`cell_regions` of catalogue 2 (empty without regions).
     ``linear_s`` says that the s edges (all but the last) are exactly ``s0 + k * ds`` and the
     mu edges (all but the last) exactly ``k / n_mu``; the fast (s, |mu|) case then runs the
     vectorised kernel.
@@ -621,25 +720,33 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
     for u in prange(n_units):
         if fast and linear_s:
             ibuf = np.empty(max_occupancy + 8, dtype=np.int64)
+            kbuf = np.empty(max_occupancy + 8, dtype=np.int64)
             accepted[u] = _count_unit_smu_vector(
                 unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
                 shape, offsets, kinds, periodic, box, los, q_lo, q_hi, s0, ds, e2.shape[0] - 1,
-                nb, hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions,
-                ibuf, origin, side, tol)
+                nb, hist_w[u], hist_raw[u], regs[u], touched[u], cell_region2, with_raw,
+                with_regions, ibuf, kbuf, origin, side, tol)
             continue
+        n_reg = touched.shape[1]
+        if with_regions:
+            # the general kernels add to any region row: clear them all up front
+            for r in range(n_reg):
+                _touch(r, regs[u], n_reg, touched[u])
+        both = regs[u, :n_reg]
+        one = regs[u, n_reg:2 * n_reg]
         jbuf = np.empty(max_occupancy, dtype=np.int64)
         qbuf = np.empty(max_occupancy, dtype=np.float64)
         if fast:
             accepted[u] = _count_unit_smu_uniform(
                 unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
                 shape, offsets, kinds, periodic, box, los, q_lo, q_hi, lut, q0, lut_scale, e2,
-                edges_b, nb, hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions,
+                edges_b, nb, hist_w[u], hist_raw[u], both, one, with_raw, with_regions,
                 jbuf, qbuf, origin, side, tol)
             continue
         accepted[u] = _count_unit(
             unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, o1, start1, x2, y2, z2, w2, r2, o2,
             start2, shape, offsets, kinds, periodic, box, mode, los, orient, q_lo, q_hi,
             lut, q0, lut_scale, e2, edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
-            hist_w[u], hist_raw[u], both[u], one[u], with_raw, with_regions, jbuf, qbuf,
+            hist_w[u], hist_raw[u], both, one, with_raw, with_regions, jbuf, qbuf,
             origin, side, tol)
     return accepted

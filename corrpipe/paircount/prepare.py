@@ -80,7 +80,7 @@ class PreparedCount:
         digest = hashlib.sha256()
         for cat in (self.cat1, self.cat2):
             for arr in (cat.x, cat.y, cat.z, cat.w, cat.regions, cat.start):
-                digest.update(np.ascontiguousarray(arr).tobytes())
+                digest.update(np.ascontiguousarray(arr).data)  # the bytes, without a copy
         header = {
             "binning": self.binning.describe(), "los": self.los, "auto": self.auto,
             "box_size": self.box_size, "n_regions": self.n_regions, "raw": self.raw,
@@ -143,7 +143,7 @@ def _check_regions(regions, n: int, n_regions: int, name: str) -> np.ndarray:
     if n and not np.issubdtype(arr.dtype, np.integer):
         if not np.all(np.isfinite(arr)) or np.any(arr != np.round(arr)):
             raise InputError(f"{name} must hold integer region labels, got dtype {arr.dtype}")
-    arr = arr.astype(np.int64)
+    arr = arr.astype(np.int64, copy=False)  # no copy of int64 labels
     if n and (arr.min() < 0 or arr.max() >= n_regions):
         bad = int(np.count_nonzero((arr < 0) | (arr >= n_regions)))
         raise InputError(
@@ -168,8 +168,8 @@ def _sort_catalogue(pos, weights, regions, grid: Grid, n_regions: int, keep_orde
     kernels.sort_into_cells(pos, weights, reg_in, grid.origin, inv_side, grid.shape, box, start,
                             xs, ys, zs, ws, rs, order)
     if regions is not None:
-        rsw = np.bincount(regions, weights=weights, minlength=n_regions)
-        rsw2 = np.bincount(regions, weights=weights * weights, minlength=n_regions)
+        # in input order like numpy.bincount, without an (N,) temporary of squared weights
+        rsw, rsw2 = kernels.region_weight_sums(regions, weights, n_regions)
     else:
         rsw = rsw2 = None
     return _Sorted(xs, ys, zs, ws, rs, order, start, n, float(np.sum(weights)),
@@ -327,6 +327,8 @@ def prepare_count(positions1, weights1=None, positions2=None, weights2=None, *,
         abs_mu=not mu_signed, inv_width_b=float(1.0 / widths_b[0]),
         pi_lo=pi_lo, pi_hi=pi_hi,
         max_occupancy=int(np.diff(cat2.start).max(initial=0)) + 1,
+        cell_region2=(kernels.cell_regions(cat2.start, cat2.regions) if n_regions
+                      else np.zeros(0, dtype=np.int32)),
         # slack of the point-to-cell pruning, far above the rounding of cell assignment
         tol=1e-9 * float(np.max(np.abs(grid.origin)) + np.max(grid.side * grid.shape)),
     )

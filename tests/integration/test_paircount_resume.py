@@ -16,6 +16,7 @@ import pytest
 from corrpipe.paircount import (
     Binning,
     CountStopped,
+    OrderedReduction,
     count_pairs,
     count_units,
     prepare_count,
@@ -110,3 +111,25 @@ def test_units_counted_in_any_grouping_reduce_to_the_same_counts(catalogue):
 
     with pytest.raises(StageError, match="missing"):
         reduce_partials(prepared, pieces[1:])
+
+
+def test_running_reduction_in_any_arrival_order_equals_reduce_partials(catalogue):
+    # reference: reduce_partials on the same partials (sorted by first unit); bitwise equal
+    pos, w, reg = catalogue
+    prepared = prepare_count(pos, w, binning=BINNING, regions1=reg, n_regions=6, raw=True,
+                             n_units=12)
+    ids = np.arange(prepared.n_units)
+    pieces = [count_units(prepared, ids[i:i + 2]) for i in range(0, ids.size, 2)]
+    expected = reduce_partials(prepared, pieces)
+    order = np.random.default_rng(3).permutation(len(pieces))
+    running = OrderedReduction(prepared, [int(p.unit_ids[0]) for p in pieces])
+    for k in order:
+        running.add(pieces[k])
+    _same(running.result(), expected)
+    from corrpipe.errors import StageError
+
+    short = OrderedReduction(prepared, [int(p.unit_ids[0]) for p in pieces])
+    for piece in pieces[:-1]:
+        short.add(piece)
+    with pytest.raises(StageError, match="missing"):
+        short.result()
