@@ -14,6 +14,7 @@ from corrpipe.errors import StageError
 from corrpipe.stages.base import Stage, StageContext
 from corrpipe.stages.common import cosmology_of, read_catalogue
 from corrpipe.stages.counts import PairCounter, binnings, line_of_sight, read_counts
+from corrpipe.stages.randoms import local_selection
 
 __all__ = ["STAGE", "TABLES"]
 
@@ -24,12 +25,15 @@ def _mock_vectors(ctx: StageContext, files: list[str]) -> np.ndarray:
     """Multipole vectors of mock catalogues through the same counts as the data.
 
     Each mock is loaded with the data's ``[catalogue]`` settings (only the path differs), gets
-    the data's FKP weighting (n(z) of the data), and is counted against the data's randoms;
+    the data's FKP weighting (n(z) of the data; with a per-class selection on a field
+    footprint, the n(z) of each object's depth class), and is counted against the data's randoms;
     the RR counts are shared (common practice when the mocks follow the data's footprint and
     n(z)).
     """
-    from corrpipe.survey.catalog import load_catalogue
     from corrpipe.estimators import estimate_from_counts
+    from corrpipe.survey.catalog import load_catalogue
+    from corrpipe.survey.field_table import field_footprint_from_settings
+    from corrpipe.survey.selection import ClassDensities, local_fkp_weights
     from corrpipe.survey.weights import RedshiftDensity, combine_fkp
 
     a = ctx.analysis
@@ -41,13 +45,20 @@ def _mock_vectors(ctx: StageContext, files: list[str]) -> np.ndarray:
         if has_r:
             rpos, rw = h5["randoms/positions"][()], h5["randoms/weights"][()]
         nz = RedshiftDensity.from_hdf5_group(h5["nz"]) if "nz" in h5 else None
+        local = a.weights.fkp and local_selection(a) and "nz_classes" in h5
+        nz_classes = ClassDensities.from_hdf5_group(h5["nz_classes"]) if local else None
+    footprint = field_footprint_from_settings(a.footprint) if local else None
     binning = binnings(a)["smu"]
     vectors = []
     with PairCounter(ctx, None, a.counts.line_of_sight, 0) as counter:
         for i, path in enumerate(files):
             mock = load_catalogue(dataclasses.replace(a.catalogue, path=path), cosmo)
             w = mock.weights
-            if nz is not None and a.weights.fkp:
+            if local:
+                classes = footprint.depth_class_of(mock.ra, mock.dec)
+                w = local_fkp_weights(w, mock.z, classes, nz_classes, nz, a.weights.fkp_p0,
+                                      a.weights.nz_interpolation)
+            elif nz is not None and a.weights.fkp:
                 w = combine_fkp(w, mock.z, nz, a.weights.fkp_p0, a.weights.nz_interpolation)
             counter.box_size = mock.box_size
             counter.los = line_of_sight(a, mock.los_axis)

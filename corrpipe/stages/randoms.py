@@ -184,6 +184,12 @@ class _ClassSelection:
     table: Any = None      # TabulatedSelection when read from randoms.selection_file
 
 
+def local_selection(a) -> bool:
+    """Whether an analysis's randoms (and FKP weights) follow each depth class's own
+    selection: a field footprint with ``[randoms] redshifts`` per class."""
+    return a.footprint.kind == "fields" and a.randoms.redshifts in ("shuffle_by_class", "table")
+
+
 def _local_randoms(ctx: StageContext, footprint, data, seed):
     """Randoms of a field footprint: per-class selection, or the global one."""
     from corrpipe.survey import randoms as rnd
@@ -195,7 +201,7 @@ def _local_randoms(ctx: StageContext, footprint, data, seed):
     n_classes = int(footprint.depth_class.max()) + 1
     n_randoms = int(round(a.randoms.size_factor * data.size))
     rnd.check_randoms_size(data.size, n_randoms, "the requested random catalogue")
-    if mode in ("shuffle_by_class", "table"):
+    if local_selection(a):
         if mode == "table":
             z_hi = a.catalogue.z_max
             table = read_selection_table(a.randoms.selection_file).restricted(

@@ -158,3 +158,26 @@ def test_field_shape_codes_are_the_table_words(tmp_path):
     fp = read_field_table(tmp_path / "fields.ecsv")
     words = Table.read(tmp_path / "fields.ecsv")["shape"]
     assert np.array_equal(fp.shape, np.where(words == "circle", CIRCLE, RECTANGLE))
+
+
+def test_mock_covariance_weights_mocks_with_their_class_n_of_z(tmp_path):
+    # A mock identical to the data must give exactly the data's multipoles: the mocks get the
+    # same FKP weighting as the data, here 1/(1 + n_k(z) P0) with each object's depth class
+    # (Feldman, Kaiser & Peacock 1994), not the global n(z).
+    import shutil
+
+    cfg = _write_inputs(tmp_path)
+    shutil.copy(tmp_path / "galaxies.fits", tmp_path / "mock_a.fits")
+    data = Table.read(tmp_path / "galaxies.fits")
+    keep = np.random.default_rng(4).random(len(data)) < 0.8
+    data[keep].write(tmp_path / "mock_b.fits", overwrite=True)
+    text = cfg.read_text().replace('regions = "fields"', 'kind = "mocks"\nmocks = ["mock_*.fits"]')
+    cfg.write_text(text.replace("[weights]\n", "[weights]\nfkp = true\n"))
+    api.run(cfg, progress=False, until="covariance")
+    with h5py.File(tmp_path / "out" / "estimate.h5") as h5:
+        data_vector = np.asarray(h5["estimate/multipoles"][()]).ravel()
+    with h5py.File(tmp_path / "out" / "covariance.h5") as h5:
+        samples = h5["samples"][()]
+    assert samples.shape[0] == 2
+    assert np.allclose(samples[0], data_vector, rtol=1e-10, atol=1e-12)
+    assert not np.allclose(samples[1], data_vector, rtol=1e-3)
