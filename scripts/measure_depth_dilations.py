@@ -41,12 +41,11 @@ from measure_depth_selection import multipoles_of  # the one LS multipole helper
 
 Z_MIN, Z_MAX = 0.25, 0.55
 CLASS_MEANS = (0.33, 0.40, 0.47)
-PEAK = 3.0e-4  # (h/Mpc)^3; the box density, so every class's n(z) is reachable by thinning
 VARIANTS = ("global", "class", "true")
-DILATIONS = ("alpha_par", "alpha_perp")
+DILATIONS = ("alpha_par", "alpha_perp", "alpha")
 
 
-def survey():
+def survey(side: float = 1.0):
     """The invented field pattern with three depth bands in RA (8 columns each)."""
     from corrpipe.survey.fields import RECTANGLE, FieldFootprint
 
@@ -54,17 +53,20 @@ def survey():
     i, j = np.divmod(np.arange(24 * 18), 18)
     n = i.size
     return FieldFootprint(20.75 + 1.5 * i, 10.75 + 1.5 * j, np.full(n, RECTANGLE),
-                          np.full(n, 1.0), np.full(n, 1.0), np.zeros(n), None,
+                          np.full(n, side), np.full(n, side), np.zeros(n), None,
                           rng.uniform(0.7, 1.0, n), i // 8)
 
 
-def nz_of_class(z, classes):
-    """Each class's target density n_k(z), (h/Mpc)^3."""
-    means = np.asarray(CLASS_MEANS)[np.asarray(classes)]
-    return PEAK * np.exp(-0.5 * ((np.asarray(z, float) - means) / 0.06) ** 2)
+def class_selection(peak: float):
+    """``nz_of_class(z, classes)``: each class's target density n_k(z), (h/Mpc)^3."""
+    def nz_of_class(z, classes):
+        means = np.asarray(CLASS_MEANS)[np.asarray(classes)]
+        return peak * np.exp(-0.5 * ((np.asarray(z, float) - means) / 0.06) ** 2)
+
+    return nz_of_class
 
 
-def one_mock(m, args, settings, cosmo, power, fp, binning, n_r):
+def one_mock(m, args, settings, cosmo, power, fp, binning, nz_of_class):
     """Multipoles of mock ``m`` against the three random catalogues."""
     from corrpipe.mocks.field_survey import field_selection_randoms, select_in_fields
     from corrpipe.mocks.make import make_box_mock
@@ -76,7 +78,7 @@ def one_mock(m, args, settings, cosmo, power, fp, binning, n_r):
     carved = carve_survey(box, cosmo, fp, Z_MIN, Z_MAX, rsd=True, seed=200 + m)
     mock = select_in_fields(carved, fp, nz_of_class, box.nbar, seed=300 + m)
     data = (mock.ra, mock.dec, mock.z)
-    n_rand = int(args.random_factor * mock.ra.size) if n_r is None else n_r
+    n_rand = int(args.random_factor * mock.ra.size)
     g = make_randoms(fp, mock.z, n_randoms=n_rand, seed=400 + m, progress=False)
     cls = fp.depth_class_of(mock.ra, mock.dec)
     c, _ = make_local_randoms(fp, ShuffledByClass(mock.z, np.ones(mock.z.size), cls, 3), n_rand,
@@ -90,7 +92,8 @@ def one_mock(m, args, settings, cosmo, power, fp, binning, n_r):
 
 
 def fit_dilations(s, vectors, sigma, z_eff, cosmo):
-    """Best-fit alpha_par, alpha_perp of each multipole vector (diagonal covariance)."""
+    """Best-fit alpha_par, alpha_perp and alpha = alpha_par^(1/3) alpha_perp^(2/3) (Xu et al.
+    2013) of each multipole vector (diagonal covariance)."""
     from corrpipe.fit import FitSettings
     from corrpipe.fit.run import best_fit, build_likelihood, build_linear_power
 
@@ -102,7 +105,8 @@ def fit_dilations(s, vectors, sigma, z_eff, cosmo):
         like = build_likelihood(s, v, cov, (0, 2), cosmology=cosmo, z_eff=z_eff,
                                 settings=settings, linear_power=lp)
         phys = like.physical(best_fit(like))
-        out.append([float(phys[q]) for q in DILATIONS])
+        a_par, a_perp = float(phys["alpha_par"]), float(phys["alpha_perp"])
+        out.append([a_par, a_perp, a_par ** (1 / 3) * a_perp ** (2 / 3)])
     return np.array(out)
 
 
@@ -110,6 +114,9 @@ def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--mocks", type=int, default=20)
     p.add_argument("--n-mesh", type=int, default=128, help="Zel'dovich mesh per side")
+    p.add_argument("--density", type=float, default=3e-4,
+                   help="peak n(z) of every class and the box density, (h/Mpc)^3")
+    p.add_argument("--field-side", type=float, default=1.0, help="square field side, deg")
     p.add_argument("--random-factor", type=float, default=5.0,
                    help="randoms per galaxy (each variant)")
     args = p.parse_args()
@@ -123,10 +130,11 @@ def main() -> int:
 
     cosmo = Cosmology()
     import dataclasses
-    settings = dataclasses.replace(demo_settings("test", fiducial_truth=True), nbar=PEAK,
+    settings = dataclasses.replace(demo_settings("test", fiducial_truth=True), nbar=args.density,
                                    n_mesh=args.n_mesh, redshift=0.40)
     power = mock_power(settings, cosmo)
-    fp = survey()
+    fp = survey(args.field_side)
+    nz_of_class = class_selection(args.density)
     binning = Binning.from_edges(np.arange(50.0, 151.0, 10.0), np.linspace(0.0, 1.0, 21))
     s = 0.5 * (binning.edges[0][1:] + binning.edges[0][:-1])
     in_range = s >= 60.0
@@ -134,7 +142,8 @@ def main() -> int:
     t0 = time.perf_counter()
     sizes, zs = [], []
     for m in range(args.mocks):
-        res, n_g, n_rand, zbar = one_mock(m, args, settings, cosmo, power, fp, binning, None)
+        res, n_g, n_rand, zbar = one_mock(m, args, settings, cosmo, power, fp, binning,
+                                           nz_of_class)
         for k in VARIANTS:
             results[k].append(res[k])
         sizes.append((n_g, n_rand))
