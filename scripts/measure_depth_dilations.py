@@ -24,7 +24,10 @@ fits over mocks).
 Usage::
 
     PYTHONPATH=. python scripts/measure_depth_dilations.py --mocks 2   # plumbing (~1 min)
-    PYTHONPATH=. python scripts/measure_depth_dilations.py --mocks 20  # ~10 min on 2 cores
+    PYTHONPATH=. python scripts/measure_depth_dilations.py --mocks 20  # ~2 min on 2 cores
+    PYTHONPATH=. python scripts/measure_depth_dilations.py --mocks 20 --n-mesh 160 --density 6e-4 \
+        --field-side 1.2 --random-factor 4                                # ~8 min
+    PYTHONPATH=. python scripts/measure_depth_dilations.py --mocks 20 --uniform-depth  # null case
 """
 
 from __future__ import annotations
@@ -57,10 +60,13 @@ def survey(side: float = 1.0):
                           rng.uniform(0.7, 1.0, n), i // 8)
 
 
-def class_selection(peak: float):
-    """``nz_of_class(z, classes)``: each class's target density n_k(z), (h/Mpc)^3."""
+def class_selection(peak: float, uniform: bool = False):
+    """``nz_of_class(z, classes)``: each class's target density n_k(z), (h/Mpc)^3 (with
+    ``uniform`` every class has the middle class's n(z))."""
+    centres = np.full(3, CLASS_MEANS[1]) if uniform else np.asarray(CLASS_MEANS)
+
     def nz_of_class(z, classes):
-        means = np.asarray(CLASS_MEANS)[np.asarray(classes)]
+        means = centres[np.asarray(classes)]
         return peak * np.exp(-0.5 * ((np.asarray(z, float) - means) / 0.06) ** 2)
 
     return nz_of_class
@@ -117,6 +123,9 @@ def main() -> int:
     p.add_argument("--density", type=float, default=3e-4,
                    help="peak n(z) of every class and the box density, (h/Mpc)^3")
     p.add_argument("--field-side", type=float, default=1.0, help="square field side, deg")
+    p.add_argument("--uniform-depth", action="store_true",
+                   help="null case: all classes share one n(z), so every difference from "
+                        "the true selection comes from shuffling the data's own redshifts")
     p.add_argument("--random-factor", type=float, default=5.0,
                    help="randoms per galaxy (each variant)")
     args = p.parse_args()
@@ -134,7 +143,7 @@ def main() -> int:
                                    n_mesh=args.n_mesh, redshift=0.40)
     power = mock_power(settings, cosmo)
     fp = survey(args.field_side)
-    nz_of_class = class_selection(args.density)
+    nz_of_class = class_selection(args.density, args.uniform_depth)
     binning = Binning.from_edges(np.arange(50.0, 151.0, 10.0), np.linspace(0.0, 1.0, 21))
     s = 0.5 * (binning.edges[0][1:] + binning.edges[0][:-1])
     in_range = s >= 60.0
