@@ -23,7 +23,7 @@ import numpy as np
 from corrpipe.errors import InputError
 from corrpipe.survey.readers import read_columns
 from corrpipe.survey.selection_kernels import draw_from_rows
-from corrpipe.survey.weights import RedshiftDensity, fkp_weights, shell_volumes
+from corrpipe.survey.weights import RedshiftDensity, fkp_weights, shell_volumes, tabulated_density
 
 __all__ = [
     "ClassDensities",
@@ -230,23 +230,9 @@ class ClassDensities:
         return int(self.nbar.shape[0])
 
     def at(self, z, classes, interpolation: str = "step") -> np.ndarray:
-        """n(z) of each object's own class at its redshift, (h/Mpc)^3; 0 outside the bins."""
-        z = np.asarray(z, dtype=np.float64)
-        classes = np.asarray(classes, dtype=np.int64)
-        n_bins = self.nbar.shape[1]
-        inside = (z >= self.z_edges[0]) & (z <= self.z_edges[-1]) & (classes >= 0)
-        k = np.maximum(classes, 0)
-        if interpolation == "step":
-            j = np.clip(np.searchsorted(self.z_edges, z, side="right") - 1, 0, n_bins - 1)
-            values = self.nbar[k, j]
-        else:
-            centres = 0.5 * (self.z_edges[1:] + self.z_edges[:-1])
-            t = np.interp(z, centres, np.arange(n_bins, dtype=np.float64))
-            j0 = np.floor(t).astype(np.int64)
-            j1 = np.minimum(j0 + 1, n_bins - 1)
-            f = t - j0
-            values = (1 - f) * self.nbar[k, j0] + f * self.nbar[k, j1]
-        return np.where(inside, values, 0.0)
+        """n(z) of each object's own class at its redshift, (h/Mpc)^3; 0 outside the bins
+        and for class -1."""
+        return tabulated_density(self.z_edges, self.nbar, z, interpolation, rows=classes)
 
     def to_hdf5_group(self, group) -> None:
         """Store the tables in an h5py group."""

@@ -22,6 +22,7 @@ __all__ = [
     "fkp_weights",
     "combine_fkp",
     "redshift_edges",
+    "tabulated_density",
 ]
 
 _GAUSS_NODES, _GAUSS_WEIGHTS = np.polynomial.legendre.leggauss(12)
@@ -107,18 +108,7 @@ class RedshiftDensity:
         ``interpolation`` is ``"step"`` (value of the bin containing z) or ``"linear"``
         (linear between bin centres, constant to the outer edges).
         """
-        z = np.asarray(z, dtype=np.float64)
-        inside = (z >= self.z_edges[0]) & (z <= self.z_edges[-1])
-        if interpolation == "step":
-            idx = np.clip(np.searchsorted(self.z_edges, z, side="right") - 1, 0,
-                          self.nbar.size - 1)
-            values = self.nbar[idx]
-        elif interpolation == "linear":
-            values = np.interp(z, self.z_centres, self.nbar)
-        else:
-            raise ConfigError(f"weights.nz_interpolation = {interpolation!r} is not "
-                              "'step' or 'linear'")
-        return np.where(inside, values, 0.0)
+        return tabulated_density(self.z_edges, self.nbar, z, interpolation)
 
     def to_hdf5_group(self, group) -> None:
         """Store the table in an h5py group."""
@@ -132,6 +122,52 @@ class RedshiftDensity:
         return cls(*(np.asarray(group[n][()]) for n in
                      ("z_edges", "nbar", "weighted_counts", "raw_counts", "volumes")),
                    area_sr=float(group.attrs["area_sr"]))
+
+
+def tabulated_density(z_edges, nbar, z, interpolation: str = "step", rows=None) -> np.ndarray:
+    """Evaluate binned n(z) tables at redshifts ``z``; 0 outside ``[z_edges[0], z_edges[-1]]``.
+
+    Parameters
+    ----------
+    z_edges : ndarray, shape (n_bins + 1,)
+        Redshift bin edges.
+    nbar : ndarray, shape (n_bins,) or (n_rows, n_bins)
+        One table, or one table per row (e.g. per depth class).
+    z : array_like
+        Redshifts.
+    interpolation : {"step", "linear"}
+        Value of the bin containing z, or linear between bin centres (constant to the edges).
+    rows : array_like of int, optional
+        With a 2-D ``nbar``: the table of each redshift (negative rows give 0).
+    """
+    z = np.asarray(z, dtype=np.float64)
+    inside = (z >= z_edges[0]) & (z <= z_edges[-1])
+    n_bins = z_edges.size - 1
+    if rows is None:
+        def pick(j):
+            return nbar[j]
+    else:
+        rows = np.asarray(rows, dtype=np.int64)
+        inside &= rows >= 0
+        safe_rows = np.maximum(rows, 0)
+
+        def pick(j):
+            return nbar[safe_rows, j]
+    if interpolation == "step":
+        values = pick(np.clip(np.searchsorted(z_edges, z, side="right") - 1, 0, n_bins - 1))
+    elif interpolation == "linear":
+        centres = 0.5 * (z_edges[1:] + z_edges[:-1])
+        if rows is None:
+            values = np.interp(z, centres, nbar)
+        else:
+            t = np.interp(z, centres, np.arange(n_bins, dtype=np.float64))
+            j0 = np.floor(t).astype(np.int64)
+            f = t - j0
+            values = (1 - f) * pick(j0) + f * pick(np.minimum(j0 + 1, n_bins - 1))
+    else:
+        raise ConfigError(f"weights.nz_interpolation = {interpolation!r} is not "
+                          "'step' or 'linear'")
+    return np.where(inside, values, 0.0)
 
 
 def redshift_density(z, weights, z_edges, area_sr: float, cosmology) -> RedshiftDensity:
