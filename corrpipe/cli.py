@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 from typing import Sequence
 
-from corrpipe.errors import CorrpipeError
+from corrpipe.errors import ConfigError, CorrpipeError
 from corrpipe.version import __version__
 
 __all__ = ["main", "build_parser"]
@@ -89,10 +89,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--output", type=Path, default=Path("corrpipe_demo"),
                    help="folder for the demo inputs and results (default: ./corrpipe_demo)")
     p.add_argument("--seed", type=int, default=7, help="seed of the demo survey")
-    p.add_argument("--size", choices=("demo", "large"), default="demo",
-                   help="demo: ~60k galaxies, about a minute, a weak (~2 sigma) BAO detection "
-                        "per survey; large: ~200k galaxies over ~2700 deg^2, a few minutes, "
-                        "a ~3 sigma detection (median over realisations)")
+    p.add_argument("--survey", choices=("lowz", "lines"), default="lowz",
+                   help="lowz (default): a small z ~ 0.45 survey in one bin (weak, ~2 sigma "
+                        "BAO); lines: a high-redshift emission-line survey (1.9 < z < 3.5, "
+                        "field mosaic, line interlopers) in two redshift bins plus the "
+                        "expansion-history fit (about 3 minutes; BAO still ~2-3 sigma per bin)")
+    p.add_argument("--size", choices=("test", "demo", "large"), default="demo",
+                   help="survey size: demo (default); test: a reduced survey that checks the "
+                        "chain in seconds (lines only); large: a bigger survey for validation "
+                        "runs")
 
     p = sub.add_parser("mock", help="write box or survey mock catalogues from a TOML file")
     p.add_argument("config", type=Path, help="TOML file with a [mock] table")
@@ -159,7 +164,11 @@ def _dispatch(args: argparse.Namespace) -> int:
         api.cosmology(args.config, force=args.force, progress=progress, echo=print)
         return 0
     if args.command == "demo":
-        api.demo(args.output, seed=args.seed, scale=args.size, progress=progress, echo=print)
+        if args.survey == "lowz" and args.size == "test":
+            raise ConfigError("corrpipe demo: --size test exists for --survey lines only; "
+                              "use --size demo or large with --survey lowz")
+        api.demo(args.output, seed=args.seed, scale=args.size, survey=args.survey,
+                 progress=progress, echo=print)
         return 0
     if args.command == "mock":
         api.write_mocks(args.config, args.output, progress=progress, echo=print)

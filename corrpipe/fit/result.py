@@ -41,14 +41,17 @@ def dilations_from_samples(names: tuple[str, ...], samples: np.ndarray) -> dict[
 
 
 def summarise_samples(values: np.ndarray, scale: float = 1.0) -> dict:
-    """Median, 16th/84th percentiles and mean of samples, errors scaled by ``scale``.
+    """Median, 16th/84th (and 2.5th/97.5th) percentiles and mean of samples, errors scaled
+    by ``scale``.
 
     The spread about the median is multiplied by ``scale`` (sqrt of the Percival et al. 2014
-    variance factor m1; 1 for none).
+    variance factor m1; 1 for none). ``p16``/``p84`` bound the 68 % interval, ``p025``/``p975``
+    the 95 % one.
     """
-    p16, med, p84 = np.percentile(values, [16.0, 50.0, 84.0])
+    p025, p16, med, p84, p975 = np.percentile(values, [2.5, 16.0, 50.0, 84.0, 97.5])
     return {"median": float(med), "p16": float(med - scale * (med - p16)),
             "p84": float(med + scale * (p84 - med)),
+            "p025": float(med - scale * (med - p025)), "p975": float(med + scale * (p975 - med)),
             "error_minus": float(scale * (med - p16)), "error_plus": float(scale * (p84 - med)),
             "mean": float(np.mean(values)), "std": float(scale * np.std(values))}
 

@@ -359,6 +359,7 @@ def zeldovich_box(
     alpha_perp: float = 1.0,
     los_axis: int = 2,
     bias_smoothing: float = 0.0,
+    lagrangian_positions: str = "nodes",
     dtype=np.float64,
     progress: bool = True,
 ) -> BoxMock:
@@ -387,6 +388,11 @@ def zeldovich_box(
         Gaussian smoothing length (Mpc/h) of the field that sets the selection weights
         (0: the raw mesh field). Smoothing lowers the field rms, so larger biases can be
         reached, at the price of a scale-dependent bias exp(-k^2 R^2 / 2).
+    lagrangian_positions : {"nodes", "cells"}
+        "nodes": galaxies start on the mesh nodes (the lattice shows in pair counts when the
+        displacements are small against the cell, e.g. at high redshift); "cells": each
+        starts at a uniform position inside its node's cell and takes the displacement read
+        there (CIC), which removes the lattice.
     dtype : numpy dtype
         Mesh precision (a seed gives the same mock only at the same precision).
     progress : bool
@@ -443,10 +449,21 @@ def zeldovich_box(
     bar.update()
     psi_mesh = mesh.displacement_fourier(delta_k, box_size, stretch=stretch)
     del delta_k
+    if lagrangian_positions not in ("nodes", "cells"):
+        raise InputError(f"lagrangian_positions must be 'nodes' or 'cells', got "
+                         f"{lagrangian_positions!r}")
     psi = np.ascontiguousarray(psi_mesh.reshape(3, -1)[:, keep].T, dtype=np.float64)
-    del psi_mesh
     bar.update()
     q = np.stack(np.unravel_index(keep, (n, n, n)), axis=1).astype(np.float64) * cell
+    if lagrangian_positions == "cells":
+        # a uniform Lagrangian position inside the node's cell, displacement read there
+        # (CIC): no lattice of start points left in the pair counts
+        q += (rng.random(q.shape) - 0.5) * cell
+        np.mod(q, box_size, out=q)
+        q[q >= box_size] = 0.0
+        psi = np.stack([mesh.interpolate(psi_mesh[a], q, box_size, "cic")
+                        for a in range(3)], axis=1)
+    del psi_mesh
     pos = q + psi
     np.mod(pos, box_size, out=pos)
     pos[pos >= box_size] = 0.0
@@ -455,7 +472,8 @@ def zeldovich_box(
     meta = {"b_lagrangian_weight": b_weight,
             "b_lagrangian_effective": clipped_linear_bias(b_weight, sigma_w),
             "sigma_weight_field": sigma_w, "sigma_psi": sigma_psi, "capped_fraction": capped,
-            "n_mesh": n, "bias_smoothing": float(bias_smoothing)}
+            "n_mesh": n, "bias_smoothing": float(bias_smoothing),
+            "lagrangian_positions": lagrangian_positions}
     return BoxMock(positions=pos, displacement=psi, box_size=float(box_size),
                    growth_rate=float(growth_rate), bias=float(bias), nbar=float(nbar),
                    kind="zeldovich", alpha_par=float(alpha_par), alpha_perp=float(alpha_perp),

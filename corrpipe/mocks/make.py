@@ -89,7 +89,8 @@ def make_box_mock(settings: MockSettings, seed: int, *, cosmology=None, power=No
             _growth_rate(settings, cosmology), seed)
     if settings.kind == "lognormal":
         return lognormal_box(*args, **common)
-    return zeldovich_box(*args, bias_smoothing=settings.bias_smoothing, **common)
+    return zeldovich_box(*args, bias_smoothing=settings.bias_smoothing,
+                         lagrangian_positions=settings.lagrangian_positions, **common)
 
 
 def make_interloper_mix(settings: MockSettings, seed: int, *, cosmology=None, power=None,

@@ -71,6 +71,11 @@ class MockSettings:
     bias_smoothing: float = setting(0.0, "zeldovich: smoothing of the field that sets the "
                                     "Lagrangian selection weights", unit="Mpc/h", low=0.0,
                                     high=100.0)
+    lagrangian_positions: str = setting(
+        "nodes", "zeldovich: galaxies start on the mesh nodes, or at uniform positions inside "
+        "the cells with the displacement read there (no lattice in the pair counts; use when "
+        "the displacements are small against the cell, e.g. at high redshift)",
+        choices=("nodes", "cells"))
     precision: str = setting("float64", "mesh precision (float32 halves memory)",
                              choices=("float64", "float32"))
     observer: tuple[float, float, float] = setting((0.0, 0.0, 0.0), "survey mode: observer "

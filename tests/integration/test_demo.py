@@ -23,7 +23,8 @@ def test_demo_prints_truth_against_recovered(tmp_path):
     from corrpipe.mocks import true_cosmology
 
     lines = []
-    out = run_demo(tmp_path / "demo", scale="tiny", progress=False, echo=lines.append)
+    out = run_demo(tmp_path / "demo", scale="tiny", survey="lowz", progress=False,
+                   echo=lines.append)
     text = "\n".join(lines)
     summary = json.loads((tmp_path / "demo" / "results" / "summary.json").read_text())
     truth = expected_dilation(true_cosmology(demo_settings("tiny")), preset("planck2018"),
@@ -49,7 +50,10 @@ def test_demo_command_passes_its_size(monkeypatch, tmp_path):
     seen = {}
     monkeypatch.setattr(api, "demo", lambda output, **kw: seen.update(kw, output=output))
     assert main(["demo", "--output", str(tmp_path / "d"), "--size", "large", "-q"]) == 0
-    assert seen["scale"] == "large" and seen["seed"] == 7
+    assert seen["scale"] == "large" and seen["seed"] == 7 and seen["survey"] == "lowz"
+    assert main(["demo", "--output", str(tmp_path / "d"), "--survey", "lines", "-q"]) == 0
+    assert seen["survey"] == "lines" and seen["scale"] == "demo"
+    assert main(["demo", "--survey", "lowz", "--size", "test", "-q"]) == 2  # one-line error
     with pytest.raises(SystemExit) as exc:
         main(["demo", "--size", "huge"])
     assert exc.value.code == 2
