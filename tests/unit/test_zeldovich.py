@@ -111,3 +111,27 @@ def test_mock_expectation_uses_the_mocks_bias_moments_and_distance_units():
                                 f=float(cosmo.growth_rate(0.5)), alpha_par=1.02 * scale,
                                 alpha_perp=0.99 * scale, n_mu=2)
     np.testing.assert_allclose(shifted, want, rtol=1e-12)
+
+
+def test_lagrangian_positions_inside_cells_are_uniform():
+    # "cells": each galaxy starts at a uniform point of its node's cell (KS test against the
+    # uniform distribution, scipy; common practice), so position - displacement is off the
+    # lattice; "nodes" keeps the start points on the lattice nodes
+    from scipy import stats
+
+    from corrpipe.mocks.box import zeldovich_box
+    from corrpipe.theory.linear_power import LinearPower
+    from corrpipe.cosmology import preset
+
+    power = LinearPower.eisenstein_hu(preset("planck2018"), z=2.0)
+    args = (power, 400.0, 40, 2e-4, 2.0, 0.9, 11)
+    cell = 10.0
+    for mode in ("nodes", "cells"):
+        box = zeldovich_box(*args, lagrangian_positions=mode, progress=False)
+        q = np.mod(box.positions - box.displacement, 400.0) / cell
+        frac = np.mod(q + 0.5, 1.0) - 0.5   # offset from the nearest node, in cells
+        if mode == "nodes":
+            assert np.max(np.abs(frac)) < 1e-6
+        else:
+            assert stats.kstest(frac.ravel() + 0.5, "uniform").pvalue > 1e-3
+            assert np.max(np.abs(frac)) <= 0.5
