@@ -160,8 +160,10 @@ class Likelihood:
         if missing:
             raise InputError(f"fit: multipoles {missing} are requested (fit.ells) but the data "
                              f"hold only {list(ells)}")
-        half = 0.5 * float(np.min(np.diff(s)))
-        if settings.s_min < s[0] - half or settings.s_max > s[-1] + half:
+        # about the outer bin edges (half a spacing of the outermost centres)
+        first = 0.5 * float(s[1] - s[0]) if s.size > 1 else 0.0
+        last = 0.5 * float(s[-1] - s[-2]) if s.size > 1 else 0.0
+        if settings.s_min < s[0] - first or settings.s_max > s[-1] + last:
             raise InputError(
                 f"fit: the fit range s_min = {settings.s_min}, s_max = {settings.s_max} Mpc/h "
                 f"lies outside the measured bins ({s[0]:g}-{s[-1]:g} Mpc/h centres); set "

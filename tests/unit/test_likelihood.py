@@ -101,6 +101,13 @@ def test_bad_inputs_give_clear_errors():
         Likelihood(S, d, cov, (0, 2), tpl, FitSettings(s_min=20.0))
     with pytest.raises(InputError, match="outside the measured bins"):
         Likelihood(S, d, cov, (0, 2), tpl, FitSettings(s_max=200.0))
+    # a range reaching the outer bin edge (half the last spacing past the last centre) is
+    # accepted even when the innermost centres lie closer together (volume-weighted centres)
+    s_close = S.copy()
+    s_close[0] = S[1] - 1.0
+    edge = float(S[-1] + 0.5 * (S[-1] - S[-2]))
+    like = Likelihood(s_close, d, cov, (0, 2), tpl, FitSettings(s_max=edge))
+    assert like.s[-1] == S[-1]
     singular = np.ones_like(cov) * 1e-6
     with pytest.raises(InputError, match="singular"):
         Likelihood(S, d, singular, (0, 2), tpl, FitSettings())
