@@ -165,15 +165,15 @@ def _summary_text(cfg: RunConfig, analysis) -> str:
 
 
 def demo(output: str | Path = "corrpipe_demo", *, seed: int = 7, scale: str = "demo",
-         survey: str = "lowz", progress: bool = True, echo: Echo = print) -> dict:
+         survey: str = "lines", progress: bool = True, echo: Echo = print) -> dict:
     """Generate a built-in (fictional) demo survey, run the whole pipeline, print truth vs
     recovered.
 
-    ``survey = "lowz"`` (default) is the single-bin z ~ 0.45 survey of :mod:`corrpipe.demo`
-    (``scale``: "demo", about 2 sigma BAO, or "large", about 3 sigma). ``survey = "lines"`` is
-    the high-redshift emission-line survey of
+    ``survey = "lines"`` (default) is the high-redshift emission-line survey of
     :mod:`corrpipe.line_demo` in two redshift bins with the expansion-history fit (``scale``:
-    "test", "demo" or "large"; its BAO detections are still weak, about 2-3 sigma per bin).
+    "test", "demo" or "large"; BAO detections about 3-4 sigma per bin at "demo" size).
+    ``survey = "lowz"`` is the single-bin z ~ 0.45 survey of :mod:`corrpipe.demo`
+    (``scale``: "demo", about 2 sigma BAO, or "large", about 3 sigma).
     """
     if survey == "lowz":
         return _run_demo(Path(output), seed=seed, scale=scale, progress=progress, echo=echo)

@@ -107,6 +107,7 @@ beta = {beta:.4f}
 analysis = "anisotropic"
 s_min = 50.0
 s_max = 150.0
+damping_model = "fixed"   # 10 / 6 Mpc/h (z ~ 0.5), as its figures were measured
 """
 
 

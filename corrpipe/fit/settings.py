@@ -74,17 +74,18 @@ class FitSettings:
     smoothing_radius: float = setting(15.0, "Gaussian smoothing radius of the reconstruction",
                                       unit="Mpc/h", low=0.0, high=100.0)
     sigma_par: float | None = setting(None, "BAO damping along the line of sight (empty: "
-                                      "10 pre-, 4.5 post-reconstruction)", unit="Mpc/h",
+                                      "from damping_model)", unit="Mpc/h",
                                       low=0.0, high=30.0)
     sigma_perp: float | None = setting(None, "BAO damping across the line of sight (empty: "
-                                       "6 pre-, 2.5 post-reconstruction)", unit="Mpc/h",
+                                       "from damping_model)", unit="Mpc/h",
                                        low=0.0, high=30.0)
-    damping_model: str = setting("fixed", "what an empty sigma_par or sigma_perp takes: "
-                                 "'fixed' (the values above) or 'zeldovich' (from the linear "
-                                 "power at z_eff: Sigma_perp^2 = int P dk / 3 pi^2, Sigma_par = "
-                                 "(1 + f) Sigma_perp, after reconstruction weighted by "
-                                 "(1 - S)^2), which follows D(z) sigma8",
-                                 choices=("fixed", "zeldovich"), neutral_default=True)
+    damping_model: str = setting("zeldovich", "what an empty sigma_par or sigma_perp takes: "
+                                 "'zeldovich' (from the linear power at z_eff: Sigma_perp^2 = "
+                                 "int P dk / 3 pi^2, Sigma_par = (1 + f) Sigma_perp, after "
+                                 "reconstruction weighted by (1 - S)^2; follows D(z) sigma8) "
+                                 "or 'fixed' (10 / 6 Mpc/h pre-, 4.5 / 2.5 post-reconstruction, "
+                                 "values for z ~ 0.5)",
+                                 choices=("fixed", "zeldovich"))
     sigma_s: float = setting(4.0, "finger-of-god damping scale", unit="Mpc/h", low=0.0,
                              high=30.0)
     sigma_prior_width: float = setting(0.0, "Gaussian prior width on sigma_par and sigma_perp, "

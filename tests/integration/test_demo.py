@@ -50,9 +50,9 @@ def test_demo_command_passes_its_size(monkeypatch, tmp_path):
     seen = {}
     monkeypatch.setattr(api, "demo", lambda output, **kw: seen.update(kw, output=output))
     assert main(["demo", "--output", str(tmp_path / "d"), "--size", "large", "-q"]) == 0
-    assert seen["scale"] == "large" and seen["seed"] == 7 and seen["survey"] == "lowz"
-    assert main(["demo", "--output", str(tmp_path / "d"), "--survey", "lines", "-q"]) == 0
-    assert seen["survey"] == "lines" and seen["scale"] == "demo"
+    assert seen["scale"] == "large" and seen["seed"] == 7 and seen["survey"] == "lines"
+    assert main(["demo", "--output", str(tmp_path / "d"), "--survey", "lowz", "-q"]) == 0
+    assert seen["survey"] == "lowz" and seen["scale"] == "demo"
     assert main(["demo", "--survey", "lowz", "--size", "test", "-q"]) == 2  # one-line error
     with pytest.raises(SystemExit) as exc:
         main(["demo", "--size", "huge"])

@@ -136,11 +136,11 @@ def test_neutral_default_keys_stay_out_of_fingerprints_until_set():
 
     plain = FitSettings()
     values = fingerprint_values(plain)
-    assert "damping_model" not in values
+    assert "interloper_line" not in values
     assert values["sigma_s"] == plain.sigma_s
     neutral = {f.name for f in _dc.fields(FitSettings) if f.metadata.get("neutral_default")}
-    assert "damping_model" in neutral
+    assert "interloper_line" in neutral
     assert set(values) == {f.name for f in _dc.fields(FitSettings)} - neutral
-    chosen = FitSettings(damping_model="zeldovich")
-    assert fingerprint_values(chosen)["damping_model"] == "zeldovich"
+    chosen = FitSettings(target_line="Lya", interloper_line="OII")
+    assert fingerprint_values(chosen)["interloper_line"] == "OII"
     assert chosen.model_hash() != plain.model_hash()

@@ -74,8 +74,12 @@ def test_low_redshift_values_near_the_usual_defaults():
 def test_resolve_damping_fills_only_empty_scales():
     cosmo = Cosmology()
     lp = LinearPower.eisenstein_hu(cosmo, 2.5)
-    fixed = FitSettings()
+    fixed = FitSettings(damping_model="fixed")
     assert resolve_damping(fixed, lp, cosmo, 2.5) is fixed
+    # the default follows the analysis redshift
+    default = resolve_damping(FitSettings(), lp, cosmo, 2.5)
+    assert default.sigma_perp == pytest.approx(zeldovich_damping(
+        lp, float(cosmo.growth_rate(2.5)))[1], rel=1e-12)
     auto = resolve_damping(FitSettings(damping_model="zeldovich", sigma_perp=3.0), lp, cosmo, 2.5)
     expected_par, _ = zeldovich_damping(lp, float(cosmo.growth_rate(2.5)))
     assert auto.sigma_perp == 3.0
