@@ -55,7 +55,7 @@ def anisotropic(tmp_path_factory):
     # The slightly skewed posterior itself puts the mean ~0.06-0.09 sigma from the input
     # (alpha_par high, alpha_perp low; measured with seeds 3, 4, 5); the Monte Carlo error of
     # the mean of a 50-tau chain is ~0.02 sigma.
-    st = FitSettings()
+    st = FitSettings(damping_model="fixed")  # the data carry the fixed 10 / 6 Mpc/h damping
     res = fit_multipoles(S, d, cov, (0, 2), cosmology=COSMO, z_eff=Z, settings=st,
                          progress_path=path, progress=False, seed=3, linear_power=_lp(),
                          covariance_type="synthetic")
@@ -137,7 +137,7 @@ def test_isotropic_fit_and_chi2_profile():
     # profile's Delta chi^2 = 1 half-width agrees with the MCMC standard deviation to 15 %
     # (Gaussian limit, Wilks' theorem; common practice).
     d, cov = _realistic((0,), 1.03, 1.03)
-    st = FitSettings(analysis="isotropic")
+    st = FitSettings(analysis="isotropic", damping_model="fixed")  # as the data
     res = fit_multipoles(S, d, cov, (0,), cosmology=COSMO, z_eff=Z, settings=st,
                          progress=False, seed=4, linear_power=_lp())
     s = res.summary["alpha"]
@@ -215,7 +215,7 @@ def test_bao_detection_against_a_no_bao_template():
     from corrpipe.fit.run import bao_detection, best_fit
 
     d, cov = _realistic((0, 2), 1.02, 0.99)
-    st = FitSettings()
+    st = FitSettings(damping_model="fixed")  # the data carry the fixed 10 / 6 Mpc/h damping
     out = []
     for scale in (1.0, 0.25):
         like = build_likelihood(S, d, cov * scale, (0, 2), cosmology=COSMO, z_eff=Z,
@@ -246,8 +246,8 @@ def test_prior_edge_mass_against_scipy_truncnorm():
     from corrpipe.fit.run import prior_edges
 
     d, cov = _realistic((0, 2), 1.0, 1.0)
-    like = build_likelihood(S, d, cov, (0, 2), cosmology=COSMO, z_eff=Z, settings=FitSettings(),
-                            linear_power=_lp())
+    like = build_likelihood(S, d, cov, (0, 2), cosmology=COSMO, z_eff=Z,
+                            settings=FitSettings(damping_model="fixed"), linear_power=_lp())
     lo, hi = like.parameters[0].low, like.parameters[0].high
     strip = 0.05 * (hi - lo)
     rng = np.random.default_rng(5)
