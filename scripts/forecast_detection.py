@@ -33,6 +33,7 @@ import numpy as np
 
 from corrpipe.cosmology import preset
 from corrpipe.covariance import gaussian_box_covariance, hartlap_factor
+from corrpipe.errors import CorrpipeError
 from corrpipe.fit.run import bao_detection, build_likelihood, build_linear_power
 from corrpipe.fit.settings import FitSettings
 
@@ -108,9 +109,15 @@ def main() -> None:
     parser.add_argument("--regions", type=int, default=None,
                         help="jackknife regions (Hartlap factor on the precision)")
     args = parser.parse_args()
-    out = forecast(args.z_min, args.z_max, args.area, args.nbar, args.bias,
-                   reconstructed=args.reconstructed, bin_width=args.bin_width,
-                   randoms_factor=args.randoms_factor, n_regions=args.regions)
+    if args.randoms_factor is not None and not args.randoms_factor > 0:
+        parser.error(f"--randoms-factor {args.randoms_factor:g}: give the number of randoms per "
+                     "data object, > 0 (e.g. 2)")
+    try:
+        out = forecast(args.z_min, args.z_max, args.area, args.nbar, args.bias,
+                       reconstructed=args.reconstructed, bin_width=args.bin_width,
+                       randoms_factor=args.randoms_factor, n_regions=args.regions)
+    except CorrpipeError as exc:  # e.g. too few --regions for the Hartlap factor
+        parser.error(str(exc))
     print(f"bin {args.z_min:g} < z < {args.z_max:g}, {args.area:g} deg^2, nbar {args.nbar:g}, "
           f"b {args.bias:g}{' (reconstructed)' if args.reconstructed else ''}")
     print(f"  volume {out['volume_gpc3']:.2f} (Gpc/h)^3, {out['n_galaxies'] / 1e3:.0f}k galaxies, "

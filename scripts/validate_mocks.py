@@ -392,8 +392,9 @@ def main(argv=None) -> int:
     for i in range(args.lines_start, args.lines_start + args.n_lines):
         t0 = time.perf_counter()
         rows.append(run_lines(i, args, args.out))
+        bins = rows[-1]["bins"]
         print(f"[lines {len(rows)}/{args.n_lines}] seed {3000 + i}: detections "
-              + ", ".join(f"{k} {v['detection_sigma']:.1f} sigma" for k, v in rows[-1]["bins"].items())
+              + ", ".join(f"{k} {v['detection_sigma']:.1f} sigma" for k, v in bins.items())
               + f" ({time.perf_counter() - t0:.0f} s)", flush=True)
         # partial results survive an interrupted batch
         (args.out / "validation_lines_partial.json").write_text(
