@@ -504,16 +504,64 @@ def _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu):
     guesses are corrected once each way against them, so the documented rule
     (``s_k**2 <= q < s_{k+1}**2``, ``mu_k <= mu < mu_{k+1}``) holds exactly. Valid for q inside
     the separation range (the caller masks the others)."""
-    top = n_mu - 1
-    k1 = min(int(mu * n_mu), top)
-    k1 -= (k1 > 0) & (mu < k1 * mu_step)
-    k1 += (k1 < top) & (mu >= (k1 + 1) * mu_step)
-    k0 = min(max(int((np.sqrt(q) - s0) * inv_ds), 0), n_s - 1)
+    top = np.int32(n_mu - 1)
+    k1 = min(np.int32(mu * n_mu), top)
+    k1 -= np.int32((k1 > 0) & (mu < k1 * mu_step))
+    k1 += np.int32((k1 < top) & (mu >= (k1 + 1) * mu_step))
+    k0 = min(max(np.int32((np.sqrt(q) - s0) * inv_ds), np.int32(0)), np.int32(n_s - 1))
     lo = k0 * ds + s0
-    k0 -= (k0 > 0) & (q < lo * lo)
+    k0 -= np.int32((k0 > 0) & (q < lo * lo))
     hi = (k0 + 1) * ds + s0
-    k0 += (k0 < n_s - 1) & (q >= hi * hi)
+    k0 += np.int32((k0 < n_s - 1) & (q >= hi * hi))
     return k0 * n_mu + k1
+
+
+_NEAR = 1 << 30  # marks a candidate whose bin the fast guess leaves to the exact float64 rule
+
+
+@njit(cache=True, inline="always")
+def _guess_flat_bin(q, mu, s0, inv_ds, n_mu_f, tol_s, tol_mu):
+    """Flat (s, |mu|) bin by flooring ``(sqrt(q) - s0) / ds`` and ``mu * n_mu`` (float64,
+    branch-free, no integer arithmetic: the cheapest form on AVX2).
+
+    Returns the flat bin as a float, or ``_NEAR`` when either coordinate lies within its
+    tolerance (a few hundred float64 rounding errors, in bins) of a bin edge: only there can
+    flooring disagree with the documented edge rule, so the caller redoes those few
+    candidates with :func:`_exact_flat_bin`. Valid for q inside the separation range."""
+    u = mu * n_mu_f
+    v = (np.sqrt(q) - s0) * inv_ds
+    k1 = np.floor(u)
+    k0 = np.floor(v)
+    fu = u - k1
+    fv = v - k0
+    clear = (min(fu, 1.0 - fu) >= tol_mu) & (min(fv, 1.0 - fv) >= tol_s)
+    return k0 * n_mu_f + k1 if clear else float(_NEAR)
+
+
+@njit(cache=True, inline="always")
+def _exact_flat_bin(xi, yi, zi, xj, yj, zj, periodic, box, half, axis, s0, ds, inv_ds, n_s,
+                    mu_step, n_mu):
+    """Flat bin of one pair with mu in float64 (the rule every kernel follows)."""
+    if periodic:
+        dx = _wrap(xj - xi, box, half)
+        dy = _wrap(yj - yi, box, half)
+        dz = _wrap(zj - zi, box, half)
+    else:
+        dx = xj - xi
+        dy = yj - yi
+        dz = zj - zi
+    q = dx * dx + dy * dy + dz * dz
+    if axis >= 0:
+        dl = dx if axis == 0 else (dy if axis == 1 else dz)
+        mu = abs(dl) / np.sqrt(max(q, 1e-300))
+    else:
+        lx = xi + xj
+        ly = yi + yj
+        lz = zi + zj
+        dl = dx * lx + dy * ly + dz * lz
+        l2 = lx * lx + ly * ly + lz * lz
+        mu = abs(dl) / np.sqrt(max(l2 * q, 1e-300))
+    return _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
 
 
 @njit(cache=True, error_model="numpy")
@@ -536,6 +584,11 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
     inv_ds = 1.0 / ds
     mu_step = 1.0 / n_mu
     n_flat = n_s * n_mu
+    n_mu_f = float(n_mu)
+    # flooring is exact away from edges; these margins (in bins) far exceed its rounding
+    eps = np.finfo(np.float64).eps
+    tol_mu = 256.0 * eps * (n_mu + 1.0)
+    tol_s = 256.0 * eps * (abs(s0) * inv_ds + n_s + 1.0)
     local = np.zeros(n_flat + N_SPARE)
     local_raw = np.zeros(n_flat + N_SPARE if with_raw else 0, dtype=np.int64)
     n_pairs = 0
@@ -574,6 +627,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                 # extra candidates lie in the following cells and go to spare slots
                 n = min((n_true + 7) & ~7, n2 - np.int64(jlo))
                 kept = 0
+                n_near = 0
                 if periodic:
                     for t in range(n):
                         j = jlo + np.uint64(t)
@@ -587,11 +641,12 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                             dl = dy
                         else:
                             dl = dz
-                        mu = abs(dl) / np.sqrt(max(q, 1e-300))
                         ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
-                        flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
-                        ibuf[t] = flat if ok else n_flat + (t & (N_SPARE - 1))
+                        mu = abs(dl) / np.sqrt(max(q, 1e-300))
+                        flat = np.int32(_guess_flat_bin(q, mu, s0, inv_ds, n_mu_f, tol_s, tol_mu))
+                        ibuf[t] = flat if ok else np.int32(n_flat + (t & (N_SPARE - 1)))
                         kept += ok
+                        n_near += ok & (flat >= _NEAR)
                 elif axis >= 0:
                     for t in range(n):
                         j = jlo + np.uint64(t)
@@ -605,11 +660,12 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                             dl = dy
                         else:
                             dl = dz
-                        mu = abs(dl) / np.sqrt(max(q, 1e-300))
                         ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
-                        flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
-                        ibuf[t] = flat if ok else n_flat + (t & (N_SPARE - 1))
+                        mu = abs(dl) / np.sqrt(max(q, 1e-300))
+                        flat = np.int32(_guess_flat_bin(q, mu, s0, inv_ds, n_mu_f, tol_s, tol_mu))
+                        ibuf[t] = flat if ok else np.int32(n_flat + (t & (N_SPARE - 1)))
                         kept += ok
+                        n_near += ok & (flat >= _NEAR)
                 else:
                     for t in range(n):
                         j = jlo + np.uint64(t)
@@ -625,13 +681,22 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                         lz = zi + zj
                         dl = dx * lx + dy * ly + dz * lz
                         l2 = lx * lx + ly * ly + lz * lz
-                        mu = abs(dl) / np.sqrt(max(l2 * q, 1e-300))
                         ok = (q < q_hi) & (q >= q_lo) & (t < n_true)
-                        flat = _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu)
-                        ibuf[t] = flat if ok else n_flat + (t & (N_SPARE - 1))
+                        mu = abs(dl) / np.sqrt(max(l2 * q, 1e-300))
+                        flat = np.int32(_guess_flat_bin(q, mu, s0, inv_ds, n_mu_f, tol_s, tol_mu))
+                        ibuf[t] = flat if ok else np.int32(n_flat + (t & (N_SPARE - 1)))
                         kept += ok
+                        n_near += ok & (flat >= _NEAR)
                 if kept == 0:
                     continue
+                if n_near:
+                    # the rare candidates next to a bin edge: bin them by the exact rule
+                    for t in range(n):
+                        if ibuf[t] >= _NEAR:
+                            j = jlo + np.uint64(t)
+                            ibuf[t] = _exact_flat_bin(xi, yi, zi, x2[j], y2[j], z2[j], periodic,
+                                                      box, half, axis, s0, ds, inv_ds, n_s,
+                                                      mu_step, n_mu)
                 n_pairs += kept
                 wi = w1[i]
                 # compact the kept candidates (branch-free store, then count), so that the
@@ -719,7 +784,7 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
             and edges_b[0] == 0.0 and edges_b[nb] == 1.0)
     for u in prange(n_units):
         if fast and linear_s:
-            ibuf = np.empty(max_occupancy + 8, dtype=np.int64)
+            ibuf = np.empty(max_occupancy + 8, dtype=np.int32)
             kbuf = np.empty(max_occupancy + 8, dtype=np.int64)
             accepted[u] = _count_unit_smu_vector(
                 unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,

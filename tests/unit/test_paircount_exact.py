@@ -163,11 +163,10 @@ def test_separations_exactly_on_bin_edges_vectorised_path():
     pos = np.concatenate([base] + [base + o for o in offsets])
     w = rng.uniform(0.5, 1.5, pos.shape[0])
     binning = Binning.linear(0.0, 25.0, 5, n_mu=5)
-    for los in ("z", "midpoint"):
-        box = 1000.0 if los == "z" else None
+    for los, box in (("z", 1000.0), ("z", None), ("midpoint", None)):
         got = count_pairs(pos, w, binning=binning, los=los, box_size=box, raw=True)
         ref = brute_force_counts(pos, w, binning=binning, los=los, box_size=box)
-        assert np.array_equal(got.raw, ref["raw"]), los
+        assert np.array_equal(got.raw, ref["raw"]), (los, box)
         np.testing.assert_allclose(got.weighted, ref["weighted"], rtol=1e-12, atol=0)
 
 
