@@ -23,6 +23,7 @@ __all__ = [
     "count_unit_batch",
     "cell_regions",
     "region_weight_sums",
+    "sort_cells_by_z",
     "N_SPARE",
 ]
 
@@ -83,6 +84,41 @@ def sort_into_cells(pos, weights, regions, origin, inv_side, shape, box, start,
             rs[k] = regions[i]
         if with_order:
             order[k] = i
+
+
+@njit(cache=True, parallel=True)
+def sort_cells_by_z(start, xs, ys, zs, ws, rs, order):
+    """Reorder the points of every cell by z (in place, ties kept in their order), so that a
+    kernel can find the points of a cell within a z window by bisection."""
+    n_cells = start.shape[0] - 1
+    with_regions = rs.shape[0] > 0
+    with_order = order.shape[0] > 0
+    for c in prange(n_cells):
+        a = start[c]
+        b = start[c + 1]
+        if b - a < 2:
+            continue
+        perm = np.argsort(zs[a:b], kind="mergesort") + a
+        xs[a:b] = xs[perm]
+        ys[a:b] = ys[perm]
+        zs[a:b] = zs[perm]
+        ws[a:b] = ws[perm]
+        if with_regions:
+            rs[a:b] = rs[perm]
+        if with_order:
+            order[a:b] = order[perm]
+
+
+@njit(cache=True, inline="always")
+def _first_at_least(z, lo, hi, value):
+    """First index k in [lo, hi) with z[k] >= value (hi if none); z ascending there."""
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if z[mid] < value:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
 
 
 @njit(cache=True)
@@ -619,10 +655,25 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
                 xi = x1[i]
                 yi = y1[i]
                 zi = z1[i]
-                if prune and _beyond(xi, yi, zi, lox, loy, loz, hix, hiy, hiz, q_hi):
-                    continue
-                jlo = np.uint64(i + 1 if kind == 1 else b0)
-                n_true = b1 - np.int64(jlo)
+                if prune:
+                    # points of cell c2 (sorted by z) that can lie within sqrt(q_hi) of i:
+                    # the z window left by the distance from i to the cell's x-y rectangle
+                    ex = max(lox - xi, 0.0, xi - hix)
+                    ey = max(loy - yi, 0.0, yi - hiy)
+                    ez = max(loz - zi, 0.0, zi - hiz)
+                    exy = ex * ex + ey * ey
+                    if exy + ez * ez >= q_hi:
+                        continue
+                    h = np.sqrt(q_hi - exy) + tol
+                    ja = _first_at_least(z2, b0, b1, zi - h)
+                    jb = _first_at_least(z2, ja, b1, zi + h)
+                    if jb == ja:
+                        continue
+                    jlo = np.uint64(ja)
+                    n_true = jb - ja
+                else:
+                    jlo = np.uint64(i + 1 if kind == 1 else b0)
+                    n_true = b1 - np.int64(jlo)
                 # round the trip count up to whole SIMD blocks (no scalar remainder); the
                 # extra candidates lie in the following cells and go to spare slots
                 n = min((n_true + 7) & ~7, n2 - np.int64(jlo))

@@ -167,6 +167,8 @@ def _sort_catalogue(pos, weights, regions, grid: Grid, n_regions: int, keep_orde
     reg_in = regions if regions is not None else np.zeros(0, dtype=np.int64)
     kernels.sort_into_cells(pos, weights, reg_in, grid.origin, inv_side, grid.shape, box, start,
                             xs, ys, zs, ws, rs, order)
+    # z order inside each cell lets the vector kernel bisect a z window per point
+    kernels.sort_cells_by_z(start, xs, ys, zs, ws, rs, order)
     if regions is not None:
         # in input order like numpy.bincount, without an (N,) temporary of squared weights
         rsw, rsw2 = kernels.region_weight_sums(regions, weights, n_regions)
