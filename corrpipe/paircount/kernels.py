@@ -805,7 +805,7 @@ def _count_unit_smu_vector(c_lo, c_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w
             hist_raw[k] += local_raw[k]
     return n_pairs
 
-@njit(cache=True, parallel=True)
+
 def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
                      x2, y2, z2, w2, r2, o2, start2, shape, offsets, kinds, periodic, box,
                      mode, los, orient, q_lo, q_hi, lut, q0, lut_scale, e2,
@@ -825,24 +825,58 @@ def count_unit_batch(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
     ``cell_region2`` is :func:`cell_regions` of catalogue 2 (empty without regions).
     ``linear_s`` says that the s edges (all but the last) are exactly ``s0 + k * ds`` and the
     mu edges (all but the last) exactly ``k / n_mu``; the fast (s, |mu|) case then runs the
-    vectorised kernel.
+    vectorised kernel. The vectorised and the general kernels are separate compiled
+    functions, so a first run compiles only the one it uses.
     Returns the number of accepted pairs per unit (int64).
     """
+    nb = edges_b.shape[0] - 1
+    fast = bool(mode == 1 and uniform_b and abs_mu and not orient and (los == 0 or los >= 3)
+                and edges_b[0] == 0.0 and edges_b[nb] == 1.0)
+    if fast and linear_s:
+        return _batch_vector(unit_lo, unit_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2,
+                             start2, shape, offsets, kinds, periodic, box, los, q_lo, q_hi,
+                             s0, ds, e2.shape[0] - 1, nb, hist_w, hist_raw, regs, touched,
+                             cell_region2, with_raw, with_regions, max_occupancy, origin, side,
+                             tol)
+    return _batch_general(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
+                          x2, y2, z2, w2, r2, o2, start2, shape, offsets, kinds, periodic, box,
+                          mode, los, orient, q_lo, q_hi, lut, q0, lut_scale, e2,
+                          edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
+                          hist_w, hist_raw, regs, touched, cell_region2, with_raw, with_regions,
+                          max_occupancy, origin, side, tol, fast)
+
+
+@njit(cache=True, parallel=True)
+def _batch_vector(unit_lo, unit_hi, x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
+                  shape, offsets, kinds, periodic, box, los, q_lo, q_hi, s0, ds, n_s, n_mu,
+                  hist_w, hist_raw, regs, touched, cell_region2, with_raw, with_regions,
+                  max_occupancy, origin, side, tol):
+    """:func:`count_unit_batch` with the vectorised (s, |mu|) kernel."""
+    n_units = unit_lo.shape[0]
+    accepted = np.zeros(n_units, dtype=np.int64)
+    for u in prange(n_units):
+        ibuf = np.empty(max_occupancy + 8, dtype=np.int32)
+        kbuf = np.empty(max_occupancy + 8, dtype=np.int64)
+        accepted[u] = _count_unit_smu_vector(
+            unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
+            shape, offsets, kinds, periodic, box, los, q_lo, q_hi, s0, ds, n_s,
+            n_mu, hist_w[u], hist_raw[u], regs[u], touched[u], cell_region2, with_raw,
+            with_regions, ibuf, kbuf, origin, side, tol)
+    return accepted
+
+
+@njit(cache=True, parallel=True)
+def _batch_general(unit_lo, unit_hi, x1, y1, z1, w1, r1, o1, start1,
+                   x2, y2, z2, w2, r2, o2, start2, shape, offsets, kinds, periodic, box,
+                   mode, los, orient, q_lo, q_hi, lut, q0, lut_scale, e2,
+                   edges_b, uniform_b, abs_mu, inv_width_b, pi_lo, pi_hi,
+                   hist_w, hist_raw, regs, touched, cell_region2, with_raw, with_regions,
+                   max_occupancy, origin, side, tol, fast):
+    """:func:`count_unit_batch` with the table-driven kernels (``fast``: the (s, |mu|) one)."""
     n_units = unit_lo.shape[0]
     accepted = np.zeros(n_units, dtype=np.int64)
     nb = edges_b.shape[0] - 1
-    fast = (mode == 1 and uniform_b and abs_mu and not orient and (los == 0 or los >= 3)
-            and edges_b[0] == 0.0 and edges_b[nb] == 1.0)
     for u in prange(n_units):
-        if fast and linear_s:
-            ibuf = np.empty(max_occupancy + 8, dtype=np.int32)
-            kbuf = np.empty(max_occupancy + 8, dtype=np.int64)
-            accepted[u] = _count_unit_smu_vector(
-                unit_lo[u], unit_hi[u], x1, y1, z1, w1, r1, start1, x2, y2, z2, w2, r2, start2,
-                shape, offsets, kinds, periodic, box, los, q_lo, q_hi, s0, ds, e2.shape[0] - 1,
-                nb, hist_w[u], hist_raw[u], regs[u], touched[u], cell_region2, with_raw,
-                with_regions, ibuf, kbuf, origin, side, tol)
-            continue
         n_reg = touched.shape[1]
         if with_regions:
             # the general kernels add to any region row: clear them all up front
