@@ -89,6 +89,9 @@ def _cells(positions: np.ndarray, box_size: float, n_mesh: int, origin) -> np.nd
     scale = n_mesh / box_size
     cells = (pos - np.asarray(origin, dtype=np.float64)) * scale
     # wrap once into [0, n) so the floor in the kernel stays in int64 range for huge offsets
+    # (np.mod leaves values already in [0, n) unchanged, so skip it when none is outside)
+    if cells.size and cells.min() >= 0.0 and cells.max() < n_mesh:
+        return cells
     return np.ascontiguousarray(np.mod(cells, n_mesh))
 
 

@@ -58,7 +58,14 @@ def power_on_mesh(power: Callable, n_mesh: int, box_size: float,
     if a.shape != (3,) or not np.all(a > 0):
         raise InputError(f"stretch must be three positive factors, got {stretch!r}")
     kx, ky, kz = mesh.wavenumbers(n_mesh, box_size)
-    kmag = np.sqrt((kx / a[0]) ** 2 + (ky / a[1]) ** 2 + (kz / a[2]) ** 2)
+    # |k| depends on |k_x| and |k_y| only (the layout holds k and -k exactly), so evaluate it
+    # on the quadrant |i_x|, |i_y| <= n/2 (a quarter of the mesh) and index it back
+    n = int(n_mesh)
+    fold = np.minimum(np.arange(n), n - np.arange(n))
+    half = n // 2 + 1
+    qx = np.abs(kx[:half])
+    qy = np.abs(ky[:, :half])
+    kmag = np.sqrt((qx / a[0]) ** 2 + (qy / a[1]) ** 2 + (kz / a[2]) ** 2)
     flat = kmag.ravel()
     uniq, inverse = np.unique(flat, return_inverse=True)
     values = np.zeros_like(uniq)
@@ -73,7 +80,9 @@ def power_on_mesh(power: Callable, n_mesh: int, box_size: float,
         raise InputError("the power spectrum returned negative or non-finite values on the "
                          f"mesh wavenumbers ({uniq[pos][0]:.3g}-{uniq[-1]:.3g} h/Mpc); it must "
                          "be a non-negative P(k) in (Mpc/h)^3")
-    out = values[inverse].reshape(kmag.shape) / float(np.prod(a))
+    quadrant = values[inverse].reshape(kmag.shape)
+    out = quadrant[fold[:, None, None], fold[None, :, None], np.arange(kz.size)[None, None, :]]
+    out /= float(np.prod(a))
     return out.astype(dtype, copy=False)
 
 
