@@ -172,7 +172,7 @@ def demo(output: str | Path = "corrpipe_demo", *, seed: int = 7, scale: str = "d
     ``survey = "lines"`` (default) is the high-redshift emission-line survey of
     :mod:`corrpipe.line_demo` in two redshift bins with the expansion-history fit (``scale``:
     "test", "demo" or "large"; BAO detections about 3 sigma per bin at "demo" size, the
-    median of 10 seeds).
+    median of 20 seeds).
     ``survey = "lowz"`` is the single-bin z ~ 0.45 survey of :mod:`corrpipe.demo`
     (``scale``: "demo", about 2 sigma BAO, or "large", about 3 sigma).
     """

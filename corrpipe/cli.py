@@ -92,8 +92,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--survey", choices=("lines", "lowz"), default="lines",
                    help="lines (default): a high-redshift emission-line survey (1.9 < z < 3.5, "
                         "field mosaic with depth classes, line interlopers) in two redshift "
-                        "bins plus the expansion-history fit (about 5 minutes on 2 cores; "
-                        "BAO ~3 sigma per bin, median of 10 seeds); lowz: a small z ~ 0.45 "
+                        "bins plus the expansion-history fit (about 3 minutes on 2 cores; "
+                        "BAO ~3 sigma per bin, median of 20 seeds); lowz: a small z ~ 0.45 "
                         "survey in one bin (about 2 minutes; weak, ~2 sigma BAO)")
     p.add_argument("--size", choices=("test", "demo", "large"), default="demo",
                    help="survey size: demo (default); test: a reduced survey that checks the "
