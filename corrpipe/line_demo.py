@@ -31,7 +31,8 @@ import numpy as np
 
 from corrpipe.errors import InputError
 
-__all__ = ["SURVEY_NAME", "TRACER", "SCALES", "BINS", "LineDemoInputs", "demo_fields",
+__all__ = ["SURVEY_NAME", "TRACER", "SCALES", "BINS", "N_DEPTH_CLASSES", "LineDemoInputs",
+           "demo_fields",
            "class_selection", "interloper_fraction", "write_line_demo_inputs",
            "line_demo_config_text", "true_expansion"]
 
@@ -67,6 +68,8 @@ SCALES = {
 #: medium, deep). Invented.
 _CLASS_AMPLITUDE = (0.75, 0.9, 1.0)
 _CLASS_SLOPE = (-0.9, -0.35, 0.2)
+#: Number of depth classes of the field mosaic.
+N_DEPTH_CLASSES = len(_CLASS_AMPLITUDE)
 #: Interloper ([O II] read as Lyman-alpha) fraction of the sample against assigned redshift:
 #: none below z = 2.55 ([O II] would have to lie at z < 0.16, too little volume for bright
 #: emitters in a small footprint), rising to 5 % above z = 2.9. Invented.

@@ -1,6 +1,7 @@
 """numba kernels of the pair counter: cell sorting, cost estimates and the counting loop.
 
-Flat module of ``@njit`` functions taking only arrays and numbers. The Python layer in
+Flat module of ``@njit`` functions taking only arrays and numbers (``count_unit_batch`` is a
+plain-Python switch between two compiled batch functions). The Python layer in
 :mod:`corrpipe.paircount.engine` validates inputs, builds the grid and picks the arguments.
 
 Codes shared with the Python layer:
@@ -579,21 +580,21 @@ N_SPARE = 16  # spare histogram slots that absorb out-of-range candidates (see b
 
 @njit(cache=True, inline="always")
 def _linear_flat_bin(q, mu, s0, ds, inv_ds, n_s, mu_step, n_mu):
-    """Flat (s, |mu|) bin from the squared separation q and |mu|, branch-free and without
-    table look-ups (SIMD-friendly). Edges are recomputed as ``s0 + k * ds`` and
-    ``k * mu_step``, which the caller checked to equal the stored edges bit for bit; the
-    guesses are corrected once each way against them, so the documented rule
+    """Flat (s, |mu|) bin from the squared separation q and |mu| by the exact edge rule, for
+    linear bins (the scalar fix-up of the vectorised kernel). Edges are recomputed as
+    ``s0 + k * ds`` and ``k * mu_step``, which the caller checked to equal the stored edges bit
+    for bit; the guesses are corrected once each way against them, so the documented rule
     (``s_k**2 <= q < s_{k+1}**2``, ``mu_k <= mu < mu_{k+1}``) holds exactly. Valid for q inside
     the separation range (the caller masks the others)."""
-    top = np.int32(n_mu - 1)
-    k1 = min(np.int32(mu * n_mu), top)
-    k1 -= np.int32((k1 > 0) & (mu < k1 * mu_step))
-    k1 += np.int32((k1 < top) & (mu >= (k1 + 1) * mu_step))
-    k0 = min(max(np.int32((np.sqrt(q) - s0) * inv_ds), np.int32(0)), np.int32(n_s - 1))
+    top = n_mu - 1
+    k1 = min(int(mu * n_mu), top)
+    k1 -= (k1 > 0) & (mu < k1 * mu_step)
+    k1 += (k1 < top) & (mu >= (k1 + 1) * mu_step)
+    k0 = min(max(int((np.sqrt(q) - s0) * inv_ds), 0), n_s - 1)
     lo = k0 * ds + s0
-    k0 -= np.int32((k0 > 0) & (q < lo * lo))
+    k0 -= (k0 > 0) & (q < lo * lo)
     hi = (k0 + 1) * ds + s0
-    k0 += np.int32((k0 < n_s - 1) & (q >= hi * hi))
+    k0 += (k0 < n_s - 1) & (q >= hi * hi)
     return k0 * n_mu + k1
 
 
@@ -622,7 +623,9 @@ def _guess_flat_bin(q, mu, s0, inv_ds, n_mu_f, tol_s, tol_mu):
 @njit(cache=True, inline="always")
 def _exact_flat_bin(xi, yi, zi, xj, yj, zj, periodic, box, half, axis, s0, ds, inv_ds, n_s,
                     mu_step, n_mu):
-    """Flat bin of one pair with mu in float64 (the rule every kernel follows)."""
+    """Flat bin of one pair with mu in float64 (the rule every kernel follows). Repeats the
+    separation and mu arithmetic of the vector loops operation for operation, so a candidate
+    redone here gets the q and mu the loop computed."""
     if periodic:
         dx = _wrap(xj - xi, box, half)
         dy = _wrap(yj - yi, box, half)
