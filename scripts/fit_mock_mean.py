@@ -16,12 +16,15 @@ Usage (after ``validate_mocks.py --out OUT``)::
     python scripts/fit_mock_mean.py OUT --batch survey --config real.toml --paired demo.toml
     python scripts/fit_mock_mean.py OUT --batch survey --paired-batch OTHER_OUT
     python scripts/fit_mock_mean.py OUT --batch survey --predict
+    python scripts/fit_mock_mean.py OUT --batch lines --analysis low --predict
 
 ``--config`` names the config file inside each mock folder (default: ``demo.toml`` for survey
-mocks, ``run.toml`` for box mocks); ``--cov scatter`` uses the scatter of the mock vectors
-(Hartlap-corrected) instead of the mean of the per-mock covariances. The truth is read from
-each mock's truth file: the expected dilation of its true cosmology against the fiducial one
-at the mean z_eff (survey), or the injected stretch (box).
+mocks, ``run.toml`` for box mocks; ``--batch lines`` reads emission-line demo surveys made by
+``corrpipe demo --out lines_NNN`` and ``--analysis`` picks the redshift bin); ``--cov
+scatter`` uses the scatter of the mock vectors (Hartlap-corrected) instead of the mean of the
+per-mock covariances. The truth is read from each mock's truth file: the expected dilation of
+its true cosmology against the fiducial one at the mean z_eff (survey), or the injected
+stretch (box).
 """
 
 from __future__ import annotations
@@ -47,10 +50,11 @@ from corrpipe.mocks import expected_dilation
 QUANTITIES = ("alpha_par", "alpha_perp", "alpha", "epsilon")
 
 
-def read_mock(config_path: Path) -> dict:
-    """Multipoles, covariance, z_eff and fit summary of one mock run."""
+def read_mock(config_path: Path, analysis: str | None = None) -> dict:
+    """Multipoles, covariance, z_eff and fit summary of one mock run (its first analysis, or
+    the named one)."""
     cfg = load_config(config_path)
-    a = cfg.analyses[0]
+    a = cfg.analysis(analysis) if analysis else cfg.analyses[0]
     folder = cfg.analysis_folder(a)
     with open_checkpoint(folder / "estimate.h5") as h5:
         est = Estimate.from_hdf5_group(h5["estimate"])
@@ -69,7 +73,15 @@ def mock_settings_of(folder: Path):
 
     path = folder / "truth.json"
     if path.exists():
-        raw = json.loads(path.read_text())["mock"]
+        doc = json.loads(path.read_text())
+        if "target_mock" in doc:  # an emission-line demo survey (corrpipe.line_demo)
+            tm, true = doc["target_mock"], doc["true_cosmology"]
+            return MockSettings(kind="zeldovich", geometry="box", box_size=tm["box_size"],
+                                n_mesh=tm["n_mesh"], nbar=tm["box_nbar"], bias=tm["bias"],
+                                redshift=tm["box_redshift"], lagrangian_positions="cells",
+                                rsd=True, true_h=true["h"], true_omega_m=true["omega_m"],
+                                true_omega_b=true["omega_b"], true_w0=true["w0"])
+        raw = doc["mock"]
     else:
         paths = sorted(folder.glob("*_truth.json"))
         if not paths:
@@ -101,6 +113,8 @@ def prediction_fit(mocks: list[dict], truth: dict, overrides=()):
     phys = like.physical(best)
     out = derived_truth(float(phys["alpha_par"]), float(phys["alpha_perp"]))
     out["chi2"] = float(like.chi2(best))
+    out["vector"] = vector
+    out["fit_range"] = (fit.s_min, fit.s_max)
     return out
 
 
@@ -169,10 +183,35 @@ def mean_fit(mocks: list[dict], cov_kind: str, seed: int = 1, overrides=()):
                           precision_factor=precision_factor, name="mean"), z_eff
 
 
+def print_residuals(mocks: list[dict], pred: dict) -> None:
+    """Mean multipoles against the noise-free expectation, bin by bin in the fit range, in
+    units of the error of the mean (mean of the per-mock covariances / N)."""
+    vectors = np.array([m["vector"] for m in mocks])
+    mean = vectors.mean(axis=0)
+    err = np.sqrt(np.diag(np.mean([m["cov"].matrix for m in mocks], axis=0)) / len(mocks))
+    s, ells = mocks[0]["s"], mocks[0]["ells"]
+    lo, hi = pred["fit_range"]
+    print("\nmean minus expectation (error of the mean in brackets):")
+    print("      s  " + "  ".join(f"{'xi_' + str(ell):>24}" for ell in ells))
+    for i, si in enumerate(s):
+        if not lo <= si <= hi:
+            continue
+        cells = []
+        for j in range(len(ells)):
+            k = j * len(s) + i
+            expect = pred["vector"][k]
+            cells.append(f"{mean[k]:+.5f} vs {expect:+.5f} ({(mean[k] - expect) / err[k]:+5.1f})")
+        print(f"  {si:5.1f}  " + "  ".join(cells))
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("out", type=Path, help="validate_mocks.py working folder")
-    ap.add_argument("--batch", default="survey", choices=("survey", "box"))
+    ap.add_argument("--batch", default="survey", choices=("survey", "box", "lines"),
+                    help="mock folders to read: survey_*, box_* or lines_* (emission-line "
+                         "demo surveys)")
+    ap.add_argument("--analysis", help="analysis (redshift bin) to read from each mock's "
+                                       "config (default: the first)")
     ap.add_argument("--config", help="config file name inside each mock folder")
     ap.add_argument("--paired", help="second config name: per-mock differences of the medians")
     ap.add_argument("--paired-batch", type=Path,
@@ -189,12 +228,12 @@ def main(argv=None) -> int:
                     help="override a [fit] setting of the mean fit (TOML value, e.g. "
                          "sigma_par=0.0); repeatable")
     args = ap.parse_args(argv)
-    name = args.config or ("demo.toml" if args.batch == "survey" else "run.toml")
+    name = args.config or ("run.toml" if args.batch == "box" else "demo.toml")
     folders = sorted(p for p in args.out.glob(f"{args.batch}_*") if (p / name).exists())
     mocks, truths = [], []
     for folder in folders:
         try:
-            m = read_mock(folder / name)
+            m = read_mock(folder / name, args.analysis)
         except Exception as exc:  # an unfinished mock: say so and go on
             print(f"skip {folder.name}: {exc}")
             continue
@@ -229,6 +268,7 @@ def main(argv=None) -> int:
                       f"(chi2 {pred['chi2']:.2f} with the covariance of the mean):")
                 for q in QUANTITIES:
                     print(f"{q:>10}: {pred[q]:.4f}  offset {pred[q] - truth[q]:+.4f}")
+                print_residuals(mocks, pred)
     if args.paired or args.paired_batch:
         other_name = args.paired or name
         base = args.paired_batch
@@ -239,7 +279,7 @@ def main(argv=None) -> int:
             if not path.exists():
                 continue
             try:
-                other = read_mock(path)["summary"]
+                other = read_mock(path, args.analysis)["summary"]
             except Exception as exc:  # an unfinished mock: say so and go on
                 print(f"skip {path}: {exc}")
                 continue
