@@ -42,6 +42,7 @@ __all__ = [
     "gradient",
     "displacement",
     "displacement_fourier",
+    "displacement_component",
 ]
 
 #: Mass-assignment schemes and their order (number of cells touched per axis).
@@ -377,19 +378,40 @@ def displacement_fourier(delta_k: np.ndarray, box_size: float, workers: int | No
     (Zel'dovich 1970, A&A 5, 84; e.g. Bernardeau et al. 2002, Phys. Rep. 367, 1, sec. 2.5).
     """
     n = delta_k.shape[0]
-    ks = list(derivative_wavenumbers(n, box_size, delta_k.real.dtype))
+    out = np.empty((3, n, n, n), dtype=delta_k.real.dtype)
+    for i in range(3):
+        out[i] = displacement_component(delta_k, box_size, i, workers, stretch)
+    return out
+
+
+def displacement_component(delta_k: np.ndarray, box_size: float, axis: int,
+                           workers: int | None = None,
+                           stretch: tuple[float, float, float] = (1.0, 1.0, 1.0)) -> np.ndarray:
+    """One Cartesian component (``axis`` 0, 1, 2) of :func:`displacement_fourier`, for callers
+    that cannot hold all three on the mesh at once.
+
+    Returns
+    -------
+    ndarray, shape (n, n, n)
+        psi_axis in Mpc/h (same values as ``displacement_fourier(...)[axis]``).
+    """
+    n = delta_k.shape[0]
+    ks = derivative_wavenumbers(n, box_size, delta_k.real.dtype)
     a = [float(s) for s in stretch]
-    ks_true = [ks[i] / a[i] for i in range(3)]
     kx, ky, kz = wavenumbers(n, box_size, delta_k.real.dtype)
     k2 = (kx / a[0]) ** 2 + (ky / a[1]) ** 2 + (kz / a[2]) ** 2
     k2[0, 0, 0] = 1.0
-    inv = 1.0 / k2
-    inv[0, 0, 0] = 0.0
-    real_dtype = delta_k.real.dtype
-    out = np.empty((3, n, n, n), dtype=real_dtype)
-    for i in range(3):
-        out[i] = to_real(1j * ks_true[i] * inv * delta_k, n, workers) / a[i]
-    return out
+    c = np.reciprocal(k2, out=k2)
+    c[0, 0, 0] = 0.0
+    c *= ks[axis] / a[axis]
+    # i c delta_k = (-c Im delta_k, c Re delta_k), written part by part to spare the mesh-size
+    # complex temporaries (the same values as the complex product)
+    field_k = np.empty_like(delta_k)
+    field_k.real = c * delta_k.imag
+    np.negative(field_k.real, out=field_k.real)
+    field_k.imag = c * delta_k.real
+    del c, k2
+    return to_real(field_k, n, workers) / a[axis]
 
 
 def displacement(delta: np.ndarray, box_size: float, smoothing: float = 0.0,

@@ -431,28 +431,34 @@ def zeldovich_box(
     p_matter = power_on_mesh(power, n, box_size, stretch)
     sigma_psi = float(np.sqrt(displacement_variance(p_matter, box_size)))
     smooth = np.exp(-mesh.k_squared(n, box_size) * bias_smoothing**2) if bias_smoothing else 1.0
-    sigma_w = float(np.sqrt(mesh_variance(p_matter * smooth, box_size)))
+    sigma_w = float(np.sqrt(mesh_variance(p_matter * smooth if bias_smoothing else p_matter,
+                                          box_size)))
     b_weight = lagrangian_bias_for(bias, sigma_w)
     noise = white_noise_fourier(n, rng, dtype)
     delta_k = gaussian_field_fourier(p_matter.astype(dtype), noise, box_size)
     del noise
     bar.update()
-    delta_w = mesh.to_real(mesh.gaussian_smooth_fourier(delta_k.copy(), box_size, bias_smoothing)
-                           if bias_smoothing else delta_k, n)
-    weight = np.maximum(0.0, 1.0 + b_weight * delta_w.ravel())
-    del delta_w
-    prob = base_prob * weight / weight.mean()
-    del weight
-    capped = float(np.mean(prob > 1.0))
-    keep = np.flatnonzero(rng.random(prob.size) < prob)
-    del prob
-    bar.update()
-    psi_mesh = mesh.displacement_fourier(delta_k, box_size, stretch=stretch)
-    del delta_k
+    del p_matter
     if lagrangian_positions not in ("nodes", "cells"):
         raise InputError(f"lagrangian_positions must be 'nodes' or 'cells', got "
                          f"{lagrangian_positions!r}")
-    psi = np.ascontiguousarray(psi_mesh.reshape(3, -1)[:, keep].T, dtype=np.float64)
+    # selection weights max(0, 1 + b_w delta) turned into keep probabilities in place, and
+    # drawn slab by slab (a generator's stream does not depend on how it is split), so the
+    # mesh holds one real field here besides delta_k
+    prob = mesh.to_real(mesh.gaussian_smooth_fourier(delta_k.copy(), box_size, bias_smoothing)
+                        if bias_smoothing else delta_k, n).reshape(-1)
+    prob *= b_weight
+    prob += 1.0
+    np.maximum(prob, 0.0, out=prob)
+    mean_weight = prob.mean()
+    prob *= base_prob
+    prob /= mean_weight
+    capped = float(np.mean(prob > 1.0))
+    slab = n * n * max(1, n // 16)
+    keep = np.concatenate([np.flatnonzero(rng.random(min(slab, prob.size - lo))
+                                          < prob[lo:lo + slab]) + lo
+                           for lo in range(0, prob.size, slab)])
+    del prob
     bar.update()
     q = np.stack(np.unravel_index(keep, (n, n, n)), axis=1).astype(np.float64) * cell
     if lagrangian_positions == "cells":
@@ -461,9 +467,17 @@ def zeldovich_box(
         q += (rng.random(q.shape) - 0.5) * cell
         np.mod(q, box_size, out=q)
         q[q >= box_size] = 0.0
-        psi = np.stack([mesh.interpolate(psi_mesh[a], q, box_size, "cic")
-                        for a in range(3)], axis=1)
-    del psi_mesh
+    # one displacement component on the mesh at a time, read out at the start points
+    psi = np.empty((keep.size, 3), dtype=np.float64)
+    for a in range(3):
+        psi_a = mesh.displacement_component(delta_k, box_size, a, stretch=stretch)
+        if lagrangian_positions == "cells":
+            psi[:, a] = mesh.interpolate(psi_a, q, box_size, "cic")
+        else:
+            psi[:, a] = psi_a.reshape(-1)[keep]
+        del psi_a
+    del delta_k
+    bar.update()
     pos = q + psi
     np.mod(pos, box_size, out=pos)
     pos[pos >= box_size] = 0.0

@@ -106,7 +106,9 @@ def gaussian_field_fourier(power_mesh: np.ndarray, noise_k: np.ndarray,
     """
     n = power_mesh.shape[0]
     cell_volume = (box_size / n) ** 3
-    return noise_k * np.sqrt(power_mesh / cell_volume).astype(noise_k.real.dtype)
+    amplitude = power_mesh / cell_volume
+    np.sqrt(amplitude, out=amplitude)
+    return noise_k * amplitude.astype(noise_k.real.dtype, copy=False)
 
 
 def mesh_variance(power_mesh: np.ndarray, box_size: float) -> float:
