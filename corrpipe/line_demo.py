@@ -34,7 +34,7 @@ from corrpipe.errors import InputError
 __all__ = ["SURVEY_NAME", "TRACER", "SCALES", "BINS", "N_DEPTH_CLASSES", "LineDemoInputs",
            "demo_fields",
            "class_selection", "interloper_fraction", "write_line_demo_inputs",
-           "line_demo_config_text", "true_expansion"]
+           "line_demo_config_text", "true_expansion", "true_selection_table"]
 
 SURVEY_NAME = "Marrowdeep Line-Emitter Survey"
 TRACER = "Lyman-alpha emitters"
@@ -99,6 +99,32 @@ def _pivot(slope):
     """Redshift where each class's n(z) reaches its amplitude: z_max for rising, z_min for
     falling densities (so the amplitude is the class's peak)."""
     return np.where(np.asarray(slope) > 0, Z_MAX, Z_MIN)
+
+
+def true_selection_table(scale: str = "demo", n_bins: int = 320):
+    """The true dN/dz of each depth class (targets and interlopers together) as the table a
+    ``[randoms] redshifts = "table"`` run reads (columns depth_class, z_min, z_max, dndz;
+    relative shapes: the class_selection density times the shell volume of the true
+    cosmology in ``n_bins`` redshift bins).
+
+    Returns
+    -------
+    astropy.table.Table
+    """
+    from astropy.table import Table
+
+    true, _ = true_expansion()
+    edges = np.linspace(Z_MIN, Z_MAX, n_bins + 1)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    shell = np.diff(true.comoving_distance(edges) ** 3)  # flat: volume per bin up to 4 pi / 3
+    nz = class_selection(SCALES[scale]["peak"])
+    rows = {"depth_class": [], "z_min": [], "z_max": [], "dndz": []}
+    for k in range(N_DEPTH_CLASSES):
+        rows["depth_class"] += [k] * n_bins
+        rows["z_min"] += list(edges[:-1])
+        rows["z_max"] += list(edges[1:])
+        rows["dndz"] += list(nz(centres, np.full(n_bins, k)) * shell)
+    return Table(rows)
 
 
 def demo_fields(scale: str = "demo"):
@@ -202,7 +228,8 @@ class LineDemoInputs:
         return expected_dilation(self.true_cosmology, self.fiducial, float(z_eff))
 
 
-def _target_mock(scale: str, seed: int, cosmology, footprint, nz_of_class, progress: bool):
+def _target_mock(scale: str, seed: int, cosmology, footprint, nz_of_class, progress: bool,
+                 rsd: bool = True):
     from corrpipe.mocks.field_survey import select_in_fields
     from corrpipe.mocks.make import make_box_mock
     from corrpipe.mocks.settings import MockSettings
@@ -218,7 +245,7 @@ def _target_mock(scale: str, seed: int, cosmology, footprint, nz_of_class, progr
     box = make_box_mock(settings, np.random.default_rng([seed, 0]), cosmology=cosmology,
                         progress=progress)
     carved = carve_survey(box, cosmology, footprint, Z_MIN, Z_MAX, observer=observer,
-                          rsd=True, seed=np.random.default_rng([seed, 1]))
+                          rsd=rsd, seed=np.random.default_rng([seed, 1]))
     nbar = box.nbar
     del box
 
@@ -228,7 +255,7 @@ def _target_mock(scale: str, seed: int, cosmology, footprint, nz_of_class, progr
     mock = select_in_fields(carved, footprint, target_nz, nbar,
                             seed=np.random.default_rng([seed, 2]))
     return mock, {"box_size": side, "observer": observer, "n_mesh": p["n_mesh"],
-                  "box_redshift": BOX_REDSHIFT, "bias": BIAS, "box_nbar": nbar}
+                  "box_redshift": BOX_REDSHIFT, "bias": BIAS, "box_nbar": nbar, "rsd": rsd}
 
 
 def _interloper_mock(scale: str, seed: int, cosmology, footprint, nz_of_class,
@@ -309,14 +336,16 @@ def _external_file(path: Path, cosmology, seed: int) -> list[dict]:
 
 
 def line_demo_config_text(scale: str, data_name: str, fields_name: str, external_name: str,
-                          seed: int = 7, output: str = "results") -> str:
-    """Batch config (TOML) of the line-survey demo, paths relative to the config file."""
+                          seed: int = 7, output: str = "results", bins=BINS,
+                          expansion: bool = True) -> str:
+    """Batch config (TOML) of the line-survey demo, paths relative to the config file
+    (``bins``: a subset of :data:`BINS` to analyse; ``expansion``: the [expansion] stage)."""
     p = SCALES[scale]
     bins = "\n".join(f"[analyses.{name}]\ncatalogue = {{ z_min = {lo:g}, z_max = {hi:g} }}"
                      + ("\nfit = { target_line = \"Lya\", interloper_line = \"OII\", "
                         "interloper_fraction = 0.05, interloper_fraction_width = 0.03, "
                         f"interloper_bias = {INTERLOPER_BIAS:g} }}" if hi > 2.7 else "") + "\n"
-                     for name, lo, hi in BINS)
+                     for name, lo, hi in bins)
     return f"""# {SURVEY_NAME}: {TRACER}, a demo survey made by corrpipe (fictional).
 # Truth: see truth.json beside this file. Fiducial cosmology: planck2018 preset.
 
@@ -369,14 +398,15 @@ damping_model = "zeldovich"      # Sigma_perp, Sigma_par from D(z_eff) sigma8 at
 
 {bins}
 [expansion]
-enabled = true
+enabled = {str(bool(expansion)).lower()}
 model = "wcdm"
 external = ["{external_name}"]   # INVENTED low-z distances from the demo's true cosmology
 """
 
 
 def write_line_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
-                           progress: bool = True) -> LineDemoInputs:
+                           progress: bool = True, rsd: bool = True,
+                           interlopers: bool = True) -> LineDemoInputs:
     """Make the line-survey demo and write its inputs (see the module docstring).
 
     Parameters
@@ -389,6 +419,10 @@ def write_line_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
         Survey size (:data:`SCALES`).
     progress : bool
         Progress bars while drawing the mocks.
+    rsd, interlopers : bool
+        Diagnostic switches (``scripts/separate_demo_bias.py``): False draws the targets
+        without redshift-space distortions, or leaves the interlopers out (the targets are
+        still thinned to make room for them, so they are the same galaxies).
 
     Returns
     -------
@@ -406,8 +440,16 @@ def write_line_demo_inputs(out_dir, seed: int = 7, scale: str = "demo", *,
     true, fid = true_expansion()
     footprint = demo_fields(scale)
     nz_of_class = class_selection(SCALES[scale]["peak"])
-    target, target_meta = _target_mock(scale, seed, true, footprint, nz_of_class, progress)
-    inter, inter_meta = _interloper_mock(scale, seed, true, footprint, nz_of_class, progress)
+    target, target_meta = _target_mock(scale, seed, true, footprint, nz_of_class, progress,
+                                       rsd=rsd)
+    if interlopers:
+        inter, inter_meta = _interloper_mock(scale, seed, true, footprint, nz_of_class,
+                                             progress)
+    else:
+        inter = dataclasses.replace(target, ra=target.ra[:0], dec=target.dec[:0],
+                                    z=target.z[:0], z_cosmo=target.z_cosmo[:0],
+                                    weights=target.weights[:0])
+        inter_meta = {"left_out": True}
     n_t, n_i = target.ra.size, inter.ra.size
     if n_t == 0:
         raise InputError("the demo survey came out empty; this is a bug in the demo settings")

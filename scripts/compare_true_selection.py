@@ -25,27 +25,10 @@ import sys
 from pathlib import Path
 
 import numpy as np
-from astropy.table import Table
 
 from corrpipe import line_demo
 
 INPUTS = ("marrowdeep_lae.fits", "marrowdeep_fields.ecsv", "invented_lowz_bao.ecsv", "truth.json")
-
-
-def true_selection_table(scale: str, n_bins: int = 320) -> Table:
-    """dN/dz per depth class of the demo survey in its true cosmology (relative shapes)."""
-    true, _ = line_demo.true_expansion()
-    edges = np.linspace(line_demo.Z_MIN, line_demo.Z_MAX, n_bins + 1)
-    centres = 0.5 * (edges[1:] + edges[:-1])
-    shell = np.diff(true.comoving_distance(edges) ** 3)  # flat: volume per bin up to 4 pi / 3
-    nz = line_demo.class_selection(line_demo.SCALES[scale]["peak"])
-    rows = {"depth_class": [], "z_min": [], "z_max": [], "dndz": []}
-    for k in range(line_demo.N_DEPTH_CLASSES):
-        rows["depth_class"] += [k] * n_bins
-        rows["z_min"] += list(edges[:-1])
-        rows["z_max"] += list(edges[1:])
-        rows["dndz"] += list(nz(centres, np.full(n_bins, k)) * shell)
-    return Table(rows)
 
 
 def summary(folder: Path, name: str) -> dict:
@@ -66,7 +49,8 @@ def rerun(src: Path, dst: Path) -> None:
     dst.mkdir(parents=True)
     for name in INPUTS:
         (dst / name).symlink_to((src / name).resolve())
-    true_selection_table(truth.get("scale", "demo")).write(dst / "true_selection.ecsv")
+    line_demo.true_selection_table(truth.get("scale", "demo")).write(
+        dst / "true_selection.ecsv")
     config = (src / "demo.toml").read_text()
     old = 'redshifts = "shuffle_by_class"'
     if old not in config:
@@ -80,9 +64,11 @@ def rerun(src: Path, dst: Path) -> None:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("run", type=Path, help="a validate_mocks.py --out folder (lines_NNN inside)")
+    parser.add_argument("run", type=Path,
+                        help="a validate_mocks.py --out folder (lines_NNN inside)")
     parser.add_argument("--mocks", type=int, nargs="*", help="mock indices (default: all)")
-    parser.add_argument("--out", type=Path, help="where the reruns go (default: RUN/true_selection)")
+    parser.add_argument("--out", type=Path,
+                        help="where the reruns go (default: RUN/true_selection)")
     args = parser.parse_args()
     if not args.run.is_dir():
         sys.exit(f"{args.run} is not a folder; give the --out folder of a validate_mocks.py "
@@ -109,7 +95,8 @@ def main() -> None:
     for name, g in gains.items():
         g = np.asarray(g)
         err = g.std(ddof=1) / np.sqrt(g.size) if g.size > 1 else float("nan")
-        print(f"bin {name}: mean detection gain {g.mean():+.2f} +- {err:.2f} sigma over {g.size} mocks")
+        print(f"bin {name}: mean detection gain {g.mean():+.2f} +- {err:.2f} sigma over "
+              f"{g.size} mocks")
 
 
 if __name__ == "__main__":

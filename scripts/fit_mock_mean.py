@@ -62,9 +62,12 @@ def read_mock(config_path: Path, analysis: str | None = None) -> dict:
     with open_checkpoint(folder / "covariance.h5") as h5:
         cov = CovarianceResult.from_hdf5_group(h5["covariance"])
     summary_path = folder / "summary.json"
-    summary = json.loads(summary_path.read_text())["summary"] if summary_path.exists() else {}
+    doc = json.loads(summary_path.read_text()) if summary_path.exists() else {}
+    detection = doc.get("diagnostics", {}).get("bao_detection", {}).get("significance_sigma")
     return {"analysis": a, "s": est.s, "ells": est.ells, "vector": est.vector("multipoles"),
-            "cov": cov, "z_eff": z_eff, "summary": summary}
+            "cov": cov, "z_eff": z_eff, "summary": doc.get("summary", {}),
+            "detection": np.nan if detection is None else float(detection),
+            "xi_smu": est.xi_smu, "mu_edges": est.mu_edges}
 
 
 def mock_settings_of(folder: Path):
@@ -79,8 +82,9 @@ def mock_settings_of(folder: Path):
             return MockSettings(kind="zeldovich", geometry="box", box_size=tm["box_size"],
                                 n_mesh=tm["n_mesh"], nbar=tm["box_nbar"], bias=tm["bias"],
                                 redshift=tm["box_redshift"], lagrangian_positions="cells",
-                                rsd=True, true_h=true["h"], true_omega_m=true["omega_m"],
-                                true_omega_b=true["omega_b"], true_w0=true["w0"])
+                                rsd=bool(tm.get("rsd", True)), true_h=true["h"],
+                                true_omega_m=true["omega_m"], true_omega_b=true["omega_b"],
+                                true_w0=true["w0"])
         raw = doc["mock"]
     else:
         paths = sorted(folder.glob("*_truth.json"))
