@@ -20,7 +20,7 @@ Usage (after ``validate_mocks.py --out OUT``)::
 
 ``--config`` names the config file inside each mock folder (default: ``demo.toml`` for survey
 mocks, ``run.toml`` for box mocks; ``--batch lines`` reads emission-line demo surveys made by
-``corrpipe demo --out lines_NNN`` and ``--analysis`` picks the redshift bin); ``--cov
+``corrpipe demo --output lines_NNN`` and ``--analysis`` picks the redshift bin); ``--cov
 scatter`` uses the scatter of the mock vectors (Hartlap-corrected) instead of the mean of the
 per-mock covariances. The truth is read from each mock's truth file: the expected dilation of
 its true cosmology against the fiducial one at the mean z_eff (survey), or the injected

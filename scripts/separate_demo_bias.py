@@ -27,7 +27,6 @@ has none below z = 2.55). Resumable: finished runs are skipped. Not part of the 
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from pathlib import Path
 
@@ -38,7 +37,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from fit_mock_mean import mean_fit, mock_settings_of, read_mock, truth_of  # noqa: E402
 
 from corrpipe import api, line_demo  # noqa: E402
-from corrpipe.mocks import expected_dilation, zeldovich_expectation  # noqa: E402
+from corrpipe.mocks import zeldovich_expectation  # noqa: E402
 
 VARIANTS = ("class", "true", "nofkp", "real")
 WEDGES = ((0.0, 0.5), (0.5, 1.0))
@@ -100,16 +99,11 @@ def quantity(summary: dict, key: str) -> tuple[float, float]:
 def peak_table(mocks: list[dict]) -> None:
     """Mean xi_0 and wedges at 85-125 Mpc/h against the Zel'dovich expectation."""
     m0 = mocks[0]
-    a = m0["analysis"]
-    fid = a.cosmology.build()
-    doc = json.loads((m0["folder"] / "truth.json").read_text())
-    from corrpipe.cosmology import Cosmology
-
-    d = expected_dilation(Cosmology(**doc["true_cosmology"]), fid,
-                          float(np.mean([m["z_eff"] for m in mocks])))
+    alpha_par, alpha_perp = truth_of(m0["folder"], float(np.mean([m["z_eff"] for m in mocks])))
     ells = (0, 2, 4, 6)
     model = zeldovich_expectation(mock_settings_of(m0["folder"]), m0["s"], ells,
-                                  alpha_par=d.alpha_par, alpha_perp=d.alpha_perp, fiducial=fid)
+                                  alpha_par=alpha_par, alpha_perp=alpha_perp,
+                                  fiducial=m0["analysis"].cosmology.build())
     xsm = np.array([m["xi_smu"] for m in mocks])
     mu_c = 0.5 * (m0["mu_edges"][1:] + m0["mu_edges"][:-1])
     n = len(mocks)

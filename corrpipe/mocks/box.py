@@ -426,6 +426,9 @@ def zeldovich_box(
                          f"above nbar = {nbar:g}; use n_mesh >= {need} or a lower nbar")
     if not np.isfinite(bias_smoothing) or bias_smoothing < 0:
         raise InputError(f"bias_smoothing must be >= 0 Mpc/h, got {bias_smoothing!r}")
+    if lagrangian_positions not in ("nodes", "cells"):
+        raise InputError(f"lagrangian_positions must be 'nodes' or 'cells', got "
+                         f"{lagrangian_positions!r}")
     stretch = _stretch(alpha_par, alpha_perp, los_axis)
     bar = tqdm(total=4, desc="Zel'dovich mock", disable=not show_bars(progress), leave=False)
     p_matter = power_on_mesh(power, n, box_size, stretch)
@@ -439,9 +442,6 @@ def zeldovich_box(
     del noise
     bar.update()
     del p_matter
-    if lagrangian_positions not in ("nodes", "cells"):
-        raise InputError(f"lagrangian_positions must be 'nodes' or 'cells', got "
-                         f"{lagrangian_positions!r}")
     # selection weights max(0, 1 + b_w delta) turned into keep probabilities in place, and
     # drawn slab by slab (a generator's stream does not depend on how it is split), so the
     # mesh holds one real field here besides delta_k

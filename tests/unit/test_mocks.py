@@ -138,6 +138,13 @@ def test_zeldovich_box_positions_are_lattice_plus_displacement():
     assert m.meta["b_lagrangian_effective"] == pytest.approx(0.8, rel=1e-8)
 
 
+def test_zeldovich_box_refuses_an_unknown_start_point_scheme():
+    # checked before any mesh work: a one-line error naming the setting and the choices
+    with pytest.raises(InputError, match="lagrangian_positions must be 'nodes' or 'cells'"):
+        zeldovich_box(toy_power, 300.0, 32, 2e-4, 1.8, 0.6, seed=2, progress=False,
+                      lagrangian_positions="grid")
+
+
 def test_clipped_linear_bias_against_quadrature():
     # Stein's lemma (Stein 1981 [from memory]): large-scale bias of w(delta) is <w'> / <w> for
     # Gaussian delta; scipy.integrate.quad reference of both expectations.
